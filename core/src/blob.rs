@@ -1,0 +1,469 @@
+//! The model blob: the only thing that crosses from host to device. `core/FORMAT.md` gives the
+//! layout byte by byte.
+//!
+//! ```text
+//! offset  size  field
+//! 0       4     magic "ELSD"
+//! 4       1     format version (1)
+//! 5       1     N, the number of features
+//! 6       1     flags: bit 0 = latch; other bits 0
+//! 7       1     reserved, 0
+//! 8       2     total length of the blob in bytes, CRC included (u16, little-endian)
+//! 10      ...   body, a postcard stream (see FORMAT.md)
+//! len-4   4     CRC-32/ISO-HDLC of bytes 0..len-4 (u32, little-endian)
+//! ```
+//!
+//! [`encode`] writes into a caller's buffer; [`decode`] validates everything and returns
+//! [`ModelParams`]; [`crate::Model::from_blob`] decodes and compiles in one step.
+
+use core::fmt;
+
+use serde::{de::DeserializeOwned, Serialize};
+
+use crate::model::Model;
+use crate::params::{
+    AlarmPolicy, ModelError, ModelMeta, ModelParams, Preprocess, Thresholds, MAX_FEATURES,
+};
+
+/// The four bytes a blob starts with.
+pub const MAGIC: [u8; 4] = *b"ELSD";
+/// The format version this crate writes and reads.
+pub const VERSION: u8 = 1;
+/// Bytes before the body.
+pub const HEADER_LEN: usize = 10;
+/// Bytes of the trailing CRC.
+pub const CRC_LEN: usize = 4;
+/// Flag bit: the alarm latches.
+pub const FLAG_LATCH: u8 = 0b0000_0001;
+
+const CRC: crc::Crc<u32> = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);
+
+/// The CRC the blob's last four bytes carry, over `bytes`.
+pub fn checksum(bytes: &[u8]) -> u32 {
+    CRC.checksum(bytes)
+}
+
+/// The largest blob a model of `n` features can need (varints at their longest).
+pub const fn max_len(n: usize) -> usize {
+    // model_id u32 (5) + trained_at u64 (10) + sequence u32 (5) + log_mask u32 (5)
+    // + f32 × (3n + n(n+1)/2 + 2) + raise_after, clear_after u16 (3 + 3)
+    HEADER_LEN + 25 + 4 * (3 * n + n * (n + 1) / 2 + 2) + 6 + CRC_LEN
+}
+
+/// The fixed header, read without checking the CRC. Useful to find a blob's length in a flash slot.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Header {
+    /// Format version.
+    pub version: u8,
+    /// Number of features.
+    pub n: u8,
+    /// Flag byte.
+    pub flags: u8,
+    /// Total length in bytes, CRC included.
+    pub len: usize,
+}
+
+impl Header {
+    /// Read the header from the start of `bytes`, which may be longer than the blob.
+    /// Checks the magic, version, flags, reserved byte and that the stated length is plausible.
+    pub fn parse(bytes: &[u8]) -> Result<Self, DecodeError> {
+        let head: &[u8; HEADER_LEN] = bytes
+            .get(..HEADER_LEN)
+            .and_then(|h| h.try_into().ok())
+            .ok_or(DecodeError::TooShort { len: bytes.len() })?;
+        let [m0, m1, m2, m3, version, n, flags, reserved, l0, l1] = *head;
+        if [m0, m1, m2, m3] != MAGIC {
+            return Err(DecodeError::Magic);
+        }
+        if version != VERSION {
+            return Err(DecodeError::Version { found: version });
+        }
+        if flags & !FLAG_LATCH != 0 || reserved != 0 {
+            return Err(DecodeError::Flags { found: flags });
+        }
+        let len = usize::from(u16::from_le_bytes([l0, l1]));
+        if len < HEADER_LEN + CRC_LEN {
+            return Err(DecodeError::Length {
+                stated: len,
+                actual: bytes.len(),
+            });
+        }
+        Ok(Self {
+            version,
+            n,
+            flags,
+            len,
+        })
+    }
+}
+
+/// Why bytes were refused as a blob. Every failure has its own variant.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum DecodeError {
+    /// Fewer bytes than a header.
+    TooShort {
+        /// Bytes given.
+        len: usize,
+    },
+    /// The first four bytes are not [`MAGIC`].
+    Magic,
+    /// A format version this crate does not read.
+    Version {
+        /// The version byte found.
+        found: u8,
+    },
+    /// The blob is for another number of features than the firmware was built for.
+    Dimension {
+        /// N in the blob.
+        found: u8,
+        /// N the caller asked for.
+        expected: u8,
+    },
+    /// Unknown flag bits, or a non-zero reserved byte.
+    Flags {
+        /// The flag byte found.
+        found: u8,
+    },
+    /// The length in the header does not match the bytes given.
+    Length {
+        /// Length the header states.
+        stated: usize,
+        /// Bytes given.
+        actual: usize,
+    },
+    /// The CRC does not match: the blob is corrupt or torn.
+    Crc {
+        /// CRC stored in the blob.
+        stored: u32,
+        /// CRC computed over the bytes.
+        computed: u32,
+    },
+    /// The body could not be read (a varint too long, or the body ended early).
+    Body,
+    /// The body has bytes left over after the last field.
+    TrailingBytes,
+    /// The bytes decoded, but the model breaks a rule.
+    Invalid(ModelError),
+}
+
+impl fmt::Display for DecodeError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            DecodeError::TooShort { len } => {
+                write!(f, "{len} bytes is shorter than a blob header")
+            }
+            DecodeError::Magic => f.write_str("not a model blob (bad magic)"),
+            DecodeError::Version { found } => {
+                write!(f, "blob format version {found} is not supported (this build reads {VERSION})")
+            }
+            DecodeError::Dimension { found, expected } => {
+                write!(f, "blob has {found} features, expected {expected}")
+            }
+            DecodeError::Flags { found } => write!(f, "unknown flags {found:#04x} in blob header"),
+            DecodeError::Length { stated, actual } => {
+                write!(f, "blob header states {stated} bytes but {actual} were given")
+            }
+            DecodeError::Crc { stored, computed } => write!(
+                f,
+                "CRC mismatch: blob says {stored:#010x}, bytes give {computed:#010x} (corrupt or torn)"
+            ),
+            DecodeError::Body => f.write_str("blob body is malformed"),
+            DecodeError::TrailingBytes => f.write_str("blob body has bytes after its last field"),
+            DecodeError::Invalid(e) => write!(f, "blob holds an invalid model: {e}"),
+        }
+    }
+}
+
+impl core::error::Error for DecodeError {
+    fn source(&self) -> Option<&(dyn core::error::Error + 'static)> {
+        match self {
+            DecodeError::Invalid(e) => Some(e),
+            _ => None,
+        }
+    }
+}
+
+impl From<ModelError> for DecodeError {
+    fn from(e: ModelError) -> Self {
+        DecodeError::Invalid(e)
+    }
+}
+
+/// Why a model could not be encoded.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum EncodeError {
+    /// The buffer is too small; [`max_len`] always suffices.
+    BufferTooSmall {
+        /// Bytes the buffer has.
+        capacity: usize,
+    },
+    /// The parameters break a rule, so no device would accept them.
+    Invalid(ModelError),
+}
+
+impl fmt::Display for EncodeError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            EncodeError::BufferTooSmall { capacity } => {
+                write!(f, "a buffer of {capacity} bytes is too small for the blob")
+            }
+            EncodeError::Invalid(e) => write!(f, "cannot encode an invalid model: {e}"),
+        }
+    }
+}
+
+impl core::error::Error for EncodeError {}
+
+struct Writer<'a> {
+    buf: &'a mut [u8],
+    pos: usize,
+}
+
+impl Writer<'_> {
+    fn put<T: Serialize>(&mut self, value: &T) -> Result<(), EncodeError> {
+        let capacity = self.buf.len();
+        let rest = self
+            .buf
+            .get_mut(self.pos..)
+            .ok_or(EncodeError::BufferTooSmall { capacity })?;
+        let used = postcard::to_slice(value, rest)
+            .map_err(|_| EncodeError::BufferTooSmall { capacity })?
+            .len();
+        self.pos += used;
+        Ok(())
+    }
+
+    fn put_all(&mut self, values: &[f32]) -> Result<(), EncodeError> {
+        values.iter().try_for_each(|v| self.put(v))
+    }
+}
+
+/// Encode validated parameters into `buf`; returns the blob's length.
+pub fn encode<const N: usize>(
+    params: &ModelParams<N>,
+    buf: &mut [u8],
+) -> Result<usize, EncodeError> {
+    params.validate().map_err(EncodeError::Invalid)?;
+    let capacity = buf.len();
+    let too_small = EncodeError::BufferTooSmall { capacity };
+    let mut w = Writer {
+        buf,
+        pos: HEADER_LEN,
+    };
+    let (m, p, t, pol) = (&params.meta, &params.preprocess, &params.thresholds, &params.policy);
+    w.put(&m.model_id)?;
+    w.put(&m.trained_at)?;
+    w.put(&m.sequence)?;
+    w.put(&p.log_mask)?;
+    w.put_all(&p.offset)?;
+    w.put_all(&p.scale)?;
+    w.put_all(&params.mean)?;
+    for (i, row) in params.w.iter().enumerate() {
+        w.put_all(row.get(..=i).unwrap_or(row))?;
+    }
+    w.put(&t.alarm)?;
+    w.put(&t.clear)?;
+    w.put(&pol.raise_after)?;
+    w.put(&pol.clear_after)?;
+    let body_end = w.pos;
+    let len = body_end + CRC_LEN;
+    let len16 = u16::try_from(len).map_err(|_| too_small)?;
+    let buf = w.buf;
+    let flags = if pol.latch { FLAG_LATCH } else { 0 };
+    let [l0, l1] = len16.to_le_bytes();
+    let head = [MAGIC[0], MAGIC[1], MAGIC[2], MAGIC[3], VERSION, N as u8, flags, 0, l0, l1];
+    buf.get_mut(..HEADER_LEN)
+        .ok_or(too_small)?
+        .copy_from_slice(&head);
+    let crc = checksum(buf.get(..body_end).ok_or(too_small)?);
+    buf.get_mut(body_end..len)
+        .ok_or(too_small)?
+        .copy_from_slice(&crc.to_le_bytes());
+    Ok(len)
+}
+
+struct Reader<'a> {
+    rest: &'a [u8],
+}
+
+impl Reader<'_> {
+    fn take<T: DeserializeOwned>(&mut self) -> Result<T, DecodeError> {
+        let (value, rest) = postcard::take_from_bytes(self.rest).map_err(|_| DecodeError::Body)?;
+        self.rest = rest;
+        Ok(value)
+    }
+
+    fn take_all(&mut self, out: &mut [f32]) -> Result<(), DecodeError> {
+        out.iter_mut().try_for_each(|v| {
+            *v = self.take()?;
+            Ok(())
+        })
+    }
+}
+
+/// Decode and validate a blob for a model of `N` features. `bytes` must be exactly the blob.
+pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeError> {
+    let h = Header::parse(bytes)?;
+    let expected = u8::try_from(N).unwrap_or(u8::MAX);
+    if usize::from(h.n) != N || N > MAX_FEATURES {
+        return Err(DecodeError::Dimension {
+            found: h.n,
+            expected,
+        });
+    }
+    if h.len != bytes.len() {
+        return Err(DecodeError::Length {
+            stated: h.len,
+            actual: bytes.len(),
+        });
+    }
+    let body_end = h.len - CRC_LEN;
+    let (covered, tail) = bytes.split_at(body_end);
+    let stored = u32::from_le_bytes(tail.try_into().map_err(|_| DecodeError::Body)?);
+    let computed = checksum(covered);
+    if stored != computed {
+        return Err(DecodeError::Crc { stored, computed });
+    }
+    let mut r = Reader {
+        rest: covered.get(HEADER_LEN..).ok_or(DecodeError::Body)?,
+    };
+    let meta = ModelMeta {
+        model_id: r.take()?,
+        trained_at: r.take()?,
+        sequence: r.take()?,
+    };
+    let mut preprocess = Preprocess::<N> {
+        log_mask: r.take()?,
+        ..Preprocess::identity()
+    };
+    r.take_all(&mut preprocess.offset)?;
+    r.take_all(&mut preprocess.scale)?;
+    let mut mean = [0.0f32; N];
+    r.take_all(&mut mean)?;
+    let mut w = [[0.0f32; N]; N];
+    for (i, row) in w.iter_mut().enumerate() {
+        for v in row.iter_mut().take(i + 1) {
+            *v = r.take()?;
+        }
+    }
+    let thresholds = Thresholds {
+        alarm: r.take()?,
+        clear: r.take()?,
+    };
+    let policy = AlarmPolicy {
+        raise_after: r.take()?,
+        clear_after: r.take()?,
+        latch: h.flags & FLAG_LATCH != 0,
+    };
+    if !r.rest.is_empty() {
+        return Err(DecodeError::TrailingBytes);
+    }
+    let params = ModelParams {
+        meta,
+        preprocess,
+        mean,
+        w,
+        thresholds,
+        policy,
+    };
+    params.validate()?;
+    Ok(params)
+}
+
+impl<const N: usize> Model<N> {
+    /// Decode, validate and compile a blob, for instance one in flash. Do this once, at boot.
+    pub fn from_blob(bytes: &[u8]) -> Result<Self, DecodeError> {
+        Ok(Model::new(decode(bytes)?)?)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn params() -> ModelParams<2> {
+        ModelParams {
+            meta: ModelMeta {
+                model_id: 0x0102_0304,
+                trained_at: 1_700_000_000,
+                sequence: 7,
+            },
+            preprocess: Preprocess {
+                log_mask: 0b10,
+                offset: [1.0, 2.0],
+                scale: [0.5, 0.25],
+            },
+            mean: [0.0, 0.0],
+            w: [[1.0, 0.0], [-0.5, 2.0]],
+            thresholds: Thresholds {
+                alarm: 9.0,
+                clear: 4.0,
+            },
+            policy: AlarmPolicy {
+                raise_after: 3,
+                clear_after: 200,
+                latch: true,
+            },
+        }
+    }
+
+    #[test]
+    fn round_trip() {
+        let mut buf = [0u8; max_len(2)];
+        let n = encode(&params(), &mut buf).unwrap();
+        assert_eq!(decode::<2>(&buf[..n]), Ok(params()));
+    }
+
+    #[test]
+    fn each_header_failure_has_its_variant() {
+        let mut buf = [0u8; max_len(2)];
+        let n = encode(&params(), &mut buf).unwrap();
+        let good = &buf[..n];
+        assert_eq!(decode::<2>(&good[..5]), Err(DecodeError::TooShort { len: 5 }));
+        let mut b = [0u8; max_len(2)];
+        b[..n].copy_from_slice(good);
+        b[0] = b'X';
+        assert_eq!(decode::<2>(&b[..n]), Err(DecodeError::Magic));
+        b[..n].copy_from_slice(good);
+        b[4] = 2;
+        assert_eq!(decode::<2>(&b[..n]), Err(DecodeError::Version { found: 2 }));
+        b[..n].copy_from_slice(good);
+        b[6] = 0x81;
+        assert_eq!(decode::<2>(&b[..n]), Err(DecodeError::Flags { found: 0x81 }));
+        assert_eq!(
+            decode::<3>(good),
+            Err(DecodeError::Dimension {
+                found: 2,
+                expected: 3
+            })
+        );
+        assert_eq!(
+            decode::<2>(&good[..n - 1]),
+            Err(DecodeError::Length {
+                stated: n,
+                actual: n - 1
+            })
+        );
+        b[..n].copy_from_slice(good);
+        b[12] ^= 0x10;
+        assert!(matches!(decode::<2>(&b[..n]), Err(DecodeError::Crc { .. })));
+    }
+
+    #[test]
+    fn encoder_refuses_invalid_params_and_small_buffers() {
+        let mut p = params();
+        p.thresholds.clear = 100.0;
+        let mut buf = [0u8; 128];
+        assert_eq!(
+            encode(&p, &mut buf),
+            Err(EncodeError::Invalid(ModelError::ThresholdOrder))
+        );
+        let mut small = [0u8; 20];
+        assert_eq!(
+            encode(&params(), &mut small),
+            Err(EncodeError::BufferTooSmall { capacity: 20 })
+        );
+    }
+}

@@ -1,0 +1,88 @@
+//! Allocation-free multivariate Gaussian anomaly scoring for microcontrollers.
+//!
+//! A model of healthy operation is a Gaussian with mean `μ` and covariance `Σ = L Lᵀ`. A reading `x`
+//! scores `d² = ‖W (u − μ)‖²` with `W = L⁻¹` and `u` the standardised reading: the squared
+//! Mahalanobis distance. Large `d²` means the reading does not fit the learnt pattern, even when
+//! every sensor on its own is inside its usual range.
+//!
+//! # Layers
+//!
+//! One concept a file:
+//!
+//! * [`params`]: the plain parameters ([`ModelParams`]) and the rules they must keep
+//!   ([`ModelParams::validate`]).
+//! * [`blob`]: the wire format, encoder **and** decoder. The blob is the only thing that crosses from
+//!   host to device; `FORMAT.md` beside this crate gives it byte by byte.
+//! * [`model`]: the compiled [`Model`] and the maths of a score, its per-feature contributions and
+//!   its log-density. This is the definition of a score: the host's replay calls it too.
+//! * [`alarm`]: the policy, a pure state machine from scores to alarm and fault lines.
+//!
+//! Check once, then never fail: [`Model::from_blob`] validates every field, and after that
+//! [`Model::score`] cannot fail except for a reading it cannot score, which is a distinct
+//! [`ReadingFault`], never a number that could pass as normal.
+//!
+//! # Memory
+//!
+//! Everything has a size known at compile time; there is no heap. A decoded model keeps its
+//! parameters (for reporting and re-encoding) and the folded form that scoring uses, so its RAM is
+//! about `8 N² + 20 N + 50` bytes. Measured with `core::mem::size_of` on x86-64 and thumbv7em alike
+//! (the same field alignments; the test
+//! `model_sizes_are_as_documented` pins these):
+//!
+//! | model | `size_of` | blob, bytes |
+//! |---|---|---|
+//! | `Model<8>` | 688 | see `FORMAT.md` |
+//! | `Model<16>` | 2 352 | see `FORMAT.md` |
+//!
+//! Scoring itself uses `4 N` bytes of stack for the deviation vector, plus a few registers.
+//!
+//! # Using it from flash
+//!
+//! ```
+//! use ellipsoid_core::{blob, AlarmMachine, Model, ModelParams, Preprocess, Thresholds};
+//! # let params = ModelParams::<2> {
+//! #     meta: Default::default(), preprocess: Preprocess::identity(), mean: [0.0; 2],
+//! #     w: [[1.0, 0.0], [0.0, 1.0]], thresholds: Thresholds { alarm: 9.0, clear: 4.0 },
+//! #     policy: Default::default() };
+//! # let mut buf = [0u8; blob::max_len(2)];
+//! # let len = blob::encode(&params, &mut buf).unwrap();
+//! // `flash` would be a `&'static [u8]` model slot; the header tells how long the blob is.
+//! let flash: &[u8] = &buf;
+//! let header = blob::Header::parse(flash).unwrap();
+//! let model = Model::<2>::from_blob(&flash[..header.len]).unwrap();
+//! let mut alarm = AlarmMachine::new(model.thresholds(), model.policy());
+//! let step = alarm.update(&model.score(&[0.5, -1.0]));
+//! assert!(!step.alarm && !step.fault);
+//! ```
+//!
+//! # Inspecting a binary
+//!
+//! `arm-none-eabi-size` gives the flash and RAM of a firmware image; `arm-none-eabi-objdump -d`
+//! shows the score loop (look for `vmla.f32` / `vfma` and `vldr` in the inner loop).
+#![cfg_attr(not(test), no_std)]
+#![forbid(unsafe_code)]
+#![deny(missing_docs)]
+
+pub mod alarm;
+pub mod blob;
+pub mod model;
+pub mod params;
+
+pub use alarm::{AlarmMachine, Event, EventKind, FaultCause, Status, Step};
+pub use blob::{DecodeError, EncodeError};
+pub use model::{Explained, Model, ReadingFault, Scored, Verdict};
+pub use params::{
+    AlarmPolicy, Field, ModelError, ModelMeta, ModelParams, Preprocess, Thresholds, MAX_FEATURES,
+    MAX_RUN,
+};
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn model_sizes_are_as_documented() {
+        assert_eq!(core::mem::size_of::<Model<8>>(), 688);
+        assert_eq!(core::mem::size_of::<Model<16>>(), 2352);
+    }
+}

@@ -1,0 +1,402 @@
+//! The compiled model and its scoring: the definition of a score.
+//!
+//! [`Model::new`] validates a [`ModelParams`] once and folds it into the form the hot path wants:
+//!
+//! * the centre `c = offset + μ / scale`, in the reading's own units (after the optional log);
+//! * `V = W · diag(scale)`, so that `z = V (t − c)` equals `W (u − μ)` in exact arithmetic.
+//!
+//! A score is then `d = t − c`, `zᵢ = Σⱼ≤ᵢ Vᵢⱼ dⱼ`, `d² = Σᵢ zᵢ²`: `N(N+1)/2` multiply-adds for the
+//! factor, `N` subtractions and `N` squares. All arithmetic is plain `f32` multiply and add in a fixed
+//! order, with no fused multiply-add, so every IEEE-754 machine (a Cortex-M4F, an x86-64 host) gets
+//! the same bits.
+//!
+//! A reading that is not finite makes `d²` NaN or infinite. That one check at the end is all the
+//! hot path pays; the slow path then finds which feature was at fault.
+
+use core::fmt;
+
+use crate::params::{AlarmPolicy, ModelError, ModelMeta, ModelParams, Thresholds, MAX_FEATURES};
+
+/// `ln(2π)`.
+const LN_2PI: f64 = 1.837_877_066_409_345_5;
+
+/// Whether a scored reading lies above the alarm threshold.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Verdict {
+    /// `d² ≤` the alarm threshold.
+    Below,
+    /// `d² >` the alarm threshold.
+    Above,
+}
+
+/// A reading that was scored.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Scored {
+    /// The squared Mahalanobis distance.
+    pub d2: f32,
+    /// `d2` against the alarm threshold.
+    pub verdict: Verdict,
+}
+
+/// Why a reading could not be scored. Never a number that could pass as normal.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum ReadingFault {
+    /// The reading of this feature is NaN or infinite.
+    NotFinite {
+        /// Feature index.
+        feature: u8,
+    },
+    /// This feature is log-transformed and its reading is zero or negative.
+    LogDomain {
+        /// Feature index.
+        feature: u8,
+    },
+    /// Every input was finite but d² overflowed `f32`.
+    Overflow,
+}
+
+impl fmt::Display for ReadingFault {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            ReadingFault::NotFinite { feature } => {
+                write!(f, "reading of feature {feature} is not finite")
+            }
+            ReadingFault::LogDomain { feature } => write!(
+                f,
+                "feature {feature} is log-transformed and its reading is not positive"
+            ),
+            ReadingFault::Overflow => f.write_str("d² overflows f32"),
+        }
+    }
+}
+
+impl core::error::Error for ReadingFault {}
+
+/// A scored reading with the per-feature contributions to d².
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Explained<const N: usize> {
+    /// The same value, to the bit, that [`Model::score`] returns.
+    pub score: Scored,
+    /// `cᵢ = dᵢ (Vᵀ z)ᵢ`; they sum to d². A large positive value names the feature that broke the pattern.
+    pub contributions: [f32; N],
+}
+
+impl<const N: usize> Explained<N> {
+    /// The feature with the largest contribution, and that contribution.
+    pub fn top(&self) -> (usize, f32) {
+        let mut best = (0, f32::NEG_INFINITY);
+        for (i, c) in self.contributions.iter().enumerate() {
+            if *c > best.1 {
+                best = (i, *c);
+            }
+        }
+        best
+    }
+}
+
+/// A validated model of `N` features, ready to score.
+///
+/// Build it with [`Model::new`] from parameters, or [`Model::from_blob`] from flash.
+/// After that nothing on it can fail or panic.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Model<const N: usize> {
+    params: ModelParams<N>,
+    center: [f32; N],
+    v: [[f32; N]; N],
+    /// `Σ ln Vᵢᵢ − N/2 ln 2π`, the log normalising constant in the reading's units.
+    ln_norm: f32,
+}
+
+impl<const N: usize> Model<N> {
+    const DIMENSION_OK: () = assert!(N > 0 && N <= MAX_FEATURES, "N must be in 1..=32");
+
+    /// Validate `params` and compile them for scoring.
+    pub fn new(params: ModelParams<N>) -> Result<Self, ModelError> {
+        #[allow(clippy::let_unit_value)]
+        let () = Self::DIMENSION_OK;
+        params.validate()?;
+        let p = &params.preprocess;
+        let mut center = [0.0f32; N];
+        for (((c, o), m), s) in center.iter_mut().zip(&p.offset).zip(&params.mean).zip(&p.scale) {
+            *c = o + m / s;
+        }
+        let mut v = [[0.0f32; N]; N];
+        let mut ln_norm = -0.5 * N as f64 * LN_2PI;
+        for (i, (vrow, wrow)) in v.iter_mut().zip(&params.w).enumerate() {
+            for (vij, (wij, sj)) in vrow.iter_mut().zip(wrow.iter().zip(&p.scale)).take(i + 1) {
+                *vij = wij * sj;
+            }
+            if vrow.iter().any(|x| !x.is_finite()) {
+                return Err(ModelError::Overflow);
+            }
+            if let Some(d) = vrow.get(i) {
+                if *d <= 0.0 {
+                    return Err(ModelError::Overflow);
+                }
+                ln_norm += libm::log(f64::from(*d));
+            }
+        }
+        if center.iter().any(|c| !c.is_finite()) {
+            return Err(ModelError::Overflow);
+        }
+        Ok(Self {
+            params,
+            center,
+            v,
+            ln_norm: ln_norm as f32,
+        })
+    }
+
+    /// The parameters this model was built from.
+    pub const fn params(&self) -> &ModelParams<N> {
+        &self.params
+    }
+
+    /// Identifier and training time.
+    pub const fn meta(&self) -> ModelMeta {
+        self.params.meta
+    }
+
+    /// Alarm and clear thresholds.
+    pub const fn thresholds(&self) -> Thresholds {
+        self.params.thresholds
+    }
+
+    /// Debounce and latch policy.
+    pub const fn policy(&self) -> AlarmPolicy {
+        self.params.policy
+    }
+
+    /// The centre `c` of the reading, in its (log-transformed) units.
+    pub const fn center(&self) -> &[f32; N] {
+        &self.center
+    }
+
+    /// `d = t(x) − c`. Without log features this is a plain subtraction.
+    #[inline(always)]
+    fn deviation(&self, x: &[f32; N]) -> Result<[f32; N], ReadingFault> {
+        let mut d = [0.0f32; N];
+        let mask = self.params.preprocess.log_mask;
+        if mask == 0 {
+            for ((di, xi), ci) in d.iter_mut().zip(x).zip(&self.center) {
+                *di = xi - ci;
+            }
+        } else {
+            for (i, ((di, xi), ci)) in d.iter_mut().zip(x).zip(&self.center).enumerate() {
+                let t = if (mask >> i) & 1 == 1 {
+                    if !(*xi > 0.0) {
+                        // NaN fails `> 0` too; report it as what it is.
+                        return Err(if xi.is_nan() {
+                            ReadingFault::NotFinite { feature: i as u8 }
+                        } else {
+                            ReadingFault::LogDomain { feature: i as u8 }
+                        });
+                    }
+                    libm::logf(*xi)
+                } else {
+                    *xi
+                };
+                *di = t - ci;
+            }
+        }
+        Ok(d)
+    }
+
+    /// `d² = ‖V d‖²`, without keeping `z`. Same operations, in the same order, as [`Self::project`].
+    #[inline(always)]
+    fn distance(&self, d: &[f32; N]) -> f32 {
+        let mut acc = 0.0f32;
+        for (i, row) in self.v.iter().enumerate() {
+            let mut z = 0.0f32;
+            for (vij, dj) in row.iter().zip(d).take(i + 1) {
+                z += vij * dj;
+            }
+            acc += z * z;
+        }
+        acc
+    }
+
+    /// `z = V d` and `d² = ‖z‖²`.
+    fn project(&self, d: &[f32; N]) -> ([f32; N], f32) {
+        let mut zs = [0.0f32; N];
+        let mut acc = 0.0f32;
+        for (i, (row, zi)) in self.v.iter().zip(zs.iter_mut()).enumerate() {
+            let mut z = 0.0f32;
+            for (vij, dj) in row.iter().zip(d).take(i + 1) {
+                z += vij * dj;
+            }
+            *zi = z;
+            acc += z * z;
+        }
+        (zs, acc)
+    }
+
+    /// The slow path after a non-finite d²: find which input was at fault.
+    #[cold]
+    fn diagnose(x: &[f32; N]) -> ReadingFault {
+        match x.iter().position(|v| !v.is_finite()) {
+            Some(i) => ReadingFault::NotFinite { feature: i as u8 },
+            None => ReadingFault::Overflow,
+        }
+    }
+
+    #[inline(always)]
+    fn judge(&self, x: &[f32; N], d2: f32) -> Result<Scored, ReadingFault> {
+        if !d2.is_finite() {
+            return Err(Self::diagnose(x));
+        }
+        let verdict = if d2 > self.params.thresholds.alarm {
+            Verdict::Above
+        } else {
+            Verdict::Below
+        };
+        Ok(Scored { d2, verdict })
+    }
+
+    /// Score a reading in raw sensor units: d² and its verdict, or why it could not be scored.
+    #[inline]
+    pub fn score(&self, x: &[f32; N]) -> Result<Scored, ReadingFault> {
+        let d = self.deviation(x)?;
+        self.judge(x, self.distance(&d))
+    }
+
+    /// Score a reading and split d² into per-feature contributions.
+    ///
+    /// The contributions are accumulated in `f64` (software on an FPU-less or single-precision
+    /// core, but only needed when an alarm is raised), then rounded to `f32`.
+    pub fn explain(&self, x: &[f32; N]) -> Result<Explained<N>, ReadingFault> {
+        let d = self.deviation(x)?;
+        let (z, d2) = self.project(&d);
+        let score = self.judge(x, d2)?;
+        let mut back = [0.0f64; N];
+        for (row, zi) in self.v.iter().zip(&z) {
+            for (bj, vij) in back.iter_mut().zip(row) {
+                *bj += f64::from(*vij) * f64::from(*zi);
+            }
+        }
+        let mut contributions = [0.0f32; N];
+        for ((c, dj), bj) in contributions.iter_mut().zip(&d).zip(&back) {
+            *c = (f64::from(*dj) * bj) as f32;
+        }
+        Ok(Explained {
+            score,
+            contributions,
+        })
+    }
+
+    /// The natural log of the model's density at `x`, in the units of the raw reading
+    /// (including the Jacobian of any log transform): `−½ (d² + N ln 2π) + Σ ln Vᵢᵢ − Σ_log ln xᵢ`.
+    pub fn log_density(&self, x: &[f32; N]) -> Result<f32, ReadingFault> {
+        let s = self.score(x)?;
+        let mut jac = 0.0f32;
+        for (i, xi) in x.iter().enumerate() {
+            if self.params.preprocess.is_log(i) {
+                jac += libm::logf(*xi);
+            }
+        }
+        Ok(self.ln_norm - 0.5 * s.d2 - jac)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::params::{Preprocess, Thresholds};
+
+    fn model2(log_mask: u32) -> Model<2> {
+        Model::new(ModelParams {
+            meta: ModelMeta::default(),
+            preprocess: Preprocess {
+                log_mask,
+                offset: [10.0, 2.0],
+                scale: [0.5, 4.0],
+            },
+            mean: [0.0, 0.0],
+            w: [[1.0, 0.0], [-0.6, 1.25]],
+            thresholds: Thresholds {
+                alarm: 9.0,
+                clear: 4.0,
+            },
+            policy: AlarmPolicy::default(),
+        })
+        .unwrap()
+    }
+
+    #[test]
+    fn score_matches_hand_computation() {
+        let m = model2(0);
+        // u = ((12 − 10)·0.5, (2.5 − 2)·4) = (1, 2); z = (1, −0.6 + 2.5) = (1, 1.9).
+        let s = m.score(&[12.0, 2.5]).unwrap();
+        assert!((s.d2 - (1.0 + 1.9 * 1.9)).abs() < 1e-5, "{}", s.d2);
+        assert_eq!(s.verdict, Verdict::Below);
+        assert_eq!(m.score(&[20.0, 2.0]).unwrap().verdict, Verdict::Above);
+    }
+
+    #[test]
+    fn non_finite_readings_are_faults() {
+        let m = model2(0);
+        assert_eq!(
+            m.score(&[f32::NAN, 1.0]),
+            Err(ReadingFault::NotFinite { feature: 0 })
+        );
+        assert_eq!(
+            m.score(&[1.0, f32::INFINITY]),
+            Err(ReadingFault::NotFinite { feature: 1 })
+        );
+        assert_eq!(
+            m.score(&[1.0, f32::NEG_INFINITY]),
+            Err(ReadingFault::NotFinite { feature: 1 })
+        );
+        assert_eq!(m.score(&[3.0e38, 0.0]), Err(ReadingFault::Overflow));
+    }
+
+    #[test]
+    fn log_features_refuse_non_positive_readings() {
+        let m = model2(0b10);
+        assert_eq!(
+            m.score(&[1.0, 0.0]),
+            Err(ReadingFault::LogDomain { feature: 1 })
+        );
+        assert_eq!(
+            m.score(&[1.0, -3.0]),
+            Err(ReadingFault::LogDomain { feature: 1 })
+        );
+        assert_eq!(
+            m.score(&[1.0, f32::NAN]),
+            Err(ReadingFault::NotFinite { feature: 1 })
+        );
+        assert!(m.score(&[10.0, core::f32::consts::E * 7.389_056]).is_ok());
+    }
+
+    #[test]
+    fn contributions_sum_to_d2_and_match_score_bits() {
+        let m = model2(0);
+        let x = [13.0, 1.0];
+        let e = m.explain(&x).unwrap();
+        let s = m.score(&x).unwrap();
+        assert_eq!(e.score.d2.to_bits(), s.d2.to_bits());
+        let sum: f32 = e.contributions.iter().sum();
+        assert!(((sum - s.d2) / s.d2).abs() < 1e-5);
+    }
+
+    #[test]
+    fn log_density_of_identity_model_is_standard_normal() {
+        let m = Model::<2>::new(ModelParams {
+            meta: ModelMeta::default(),
+            preprocess: Preprocess::identity(),
+            mean: [0.0; 2],
+            w: [[1.0, 0.0], [0.0, 1.0]],
+            thresholds: Thresholds {
+                alarm: 9.0,
+                clear: 4.0,
+            },
+            policy: AlarmPolicy::default(),
+        })
+        .unwrap();
+        // Standard bivariate normal: pdf([1,1]) = 0.05854983152431917 (shared/reference-values.md,
+        // from the closed form (2π)⁻¹ exp(−½‖x‖²)).
+        let lp = m.log_density(&[1.0, 1.0]).unwrap();
+        assert!((lp - libm::logf(0.058_549_83)).abs() < 1e-6);
+    }
+}

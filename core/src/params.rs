@@ -1,0 +1,326 @@
+//! The plain parameters of a model: what the blob carries, and what the trainer builds.
+//!
+//! [`ModelParams`] is data with public fields. [`ModelParams::validate`] checks every rule that
+//! [`crate::Model`] relies on, so that a validated value can be compiled and scored without
+//! any further checks.
+
+use core::fmt;
+
+/// Largest dimension a blob can describe. The log-transform mask is a `u32`, one bit a feature.
+pub const MAX_FEATURES: usize = 32;
+
+/// Largest value of [`AlarmPolicy::raise_after`] and [`AlarmPolicy::clear_after`].
+///
+/// At one reading a second this is an hour, far beyond any sensible debounce.
+pub const MAX_RUN: u16 = 3600;
+
+/// Who made the model and when. Set by the host; the device only reports it.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Default)]
+pub struct ModelMeta {
+    /// An identifier the host chooses (for instance a hash of the training run).
+    pub model_id: u32,
+    /// When the model was trained, in seconds since 1970-01-01 00:00:00 UTC.
+    pub trained_at: u64,
+    /// Rises with every model flashed to a node; of two valid model slots the device takes the
+    /// higher sequence number.
+    pub sequence: u32,
+}
+
+/// Per-feature preprocessing, from raw sensor units to the model's space.
+///
+/// A raw reading `x` becomes `t = ln(x)` if the feature's bit is set in `log_mask`, else `t = x`.
+/// The model's standardised value is then `u = (t − offset) · scale`.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Preprocess<const N: usize> {
+    /// Bit `i` set: feature `i` is log-transformed before the offset and scale. Bits `N..` must be clear.
+    pub log_mask: u32,
+    /// Subtracted from the (log-transformed) reading, in its units.
+    pub offset: [f32; N],
+    /// Multiplies the offset reading. Must be finite and positive.
+    pub scale: [f32; N],
+}
+
+impl<const N: usize> Preprocess<N> {
+    /// No transform: offset 0, scale 1, no logs.
+    pub const fn identity() -> Self {
+        Self {
+            log_mask: 0,
+            offset: [0.0; N],
+            scale: [1.0; N],
+        }
+    }
+
+    /// Whether feature `i` is log-transformed.
+    pub const fn is_log(&self, i: usize) -> bool {
+        i < 32 && (self.log_mask >> i) & 1 == 1
+    }
+}
+
+/// The alarm thresholds on d², the squared Mahalanobis distance.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Thresholds {
+    /// A reading with d² strictly above this counts towards raising the alarm.
+    pub alarm: f32,
+    /// A reading with d² strictly below this counts towards clearing it. `0 ≤ clear ≤ alarm`.
+    pub clear: f32,
+}
+
+/// How the alarm state machine debounces readings. See [`crate::alarm`].
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct AlarmPolicy {
+    /// Raise after this many consecutive readings above the alarm threshold (`1..=MAX_RUN`).
+    pub raise_after: u16,
+    /// Clear after this many consecutive readings below the clear threshold (`1..=MAX_RUN`).
+    pub clear_after: u16,
+    /// Once raised, stay raised until an explicit reset.
+    pub latch: bool,
+}
+
+impl Default for AlarmPolicy {
+    fn default() -> Self {
+        Self {
+            raise_after: 1,
+            clear_after: 1,
+            latch: false,
+        }
+    }
+}
+
+/// Every parameter of a model of `N` features.
+///
+/// The Gaussian lives in the standardised space `u` (see [`Preprocess`]): mean `mean`, and covariance
+/// `Σ = L Lᵀ` with `w = L⁻¹` lower-triangular. Only the lower triangle of `w` (`j ≤ i`) is used; the
+/// strict upper triangle must be zero.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct ModelParams<const N: usize> {
+    /// Identifier and training time.
+    pub meta: ModelMeta,
+    /// Raw units to the standardised space.
+    pub preprocess: Preprocess<N>,
+    /// Mean `μ` in the standardised space.
+    pub mean: [f32; N],
+    /// `W = L⁻¹`, lower-triangular, row-major: `w[i][j]` for `j ≤ i`.
+    pub w: [[f32; N]; N],
+    /// Alarm and clear thresholds on d².
+    pub thresholds: Thresholds,
+    /// Debounce and latch.
+    pub policy: AlarmPolicy,
+}
+
+/// Why a set of parameters was refused. Each variant names the rule it broke.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum ModelError {
+    /// `N` is 0 or larger than [`MAX_FEATURES`].
+    Dimension {
+        /// The dimension asked for.
+        n: usize,
+    },
+    /// A parameter is NaN or infinite.
+    NotFinite {
+        /// Which parameter.
+        field: Field,
+        /// Index of the feature (row for `W`).
+        index: u8,
+    },
+    /// A diagonal element of `W` is not strictly positive.
+    FactorDiagonal {
+        /// Row of the offending element.
+        index: u8,
+    },
+    /// An element above the diagonal of `W` is not zero.
+    FactorNotLower {
+        /// Row of the offending element.
+        row: u8,
+        /// Column of the offending element.
+        col: u8,
+    },
+    /// A scale is zero or negative.
+    Scale {
+        /// Feature index.
+        index: u8,
+    },
+    /// The log mask has bits set at or beyond `N`.
+    LogMask,
+    /// The thresholds are not ordered `0 ≤ clear ≤ alarm`, or `alarm` is not positive.
+    ThresholdOrder,
+    /// A policy run length is outside `1..=MAX_RUN`.
+    PolicyRange,
+    /// Folding the scale into `W` overflowed `f32`.
+    Overflow,
+}
+
+/// The parameter a [`ModelError::NotFinite`] is about.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum Field {
+    /// [`Preprocess::offset`].
+    Offset,
+    /// [`Preprocess::scale`].
+    Scale,
+    /// [`ModelParams::mean`].
+    Mean,
+    /// [`ModelParams::w`].
+    Factor,
+    /// [`ModelParams::thresholds`].
+    Threshold,
+}
+
+impl fmt::Display for Field {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(match self {
+            Field::Offset => "offset",
+            Field::Scale => "scale",
+            Field::Mean => "mean",
+            Field::Factor => "factor W",
+            Field::Threshold => "threshold",
+        })
+    }
+}
+
+impl fmt::Display for ModelError {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            ModelError::Dimension { n } => {
+                write!(f, "dimension {n} is outside 1..={MAX_FEATURES}")
+            }
+            ModelError::NotFinite { field, index } => {
+                write!(f, "{field} of feature {index} is not finite")
+            }
+            ModelError::FactorDiagonal { index } => {
+                write!(f, "diagonal W[{index}][{index}] is not positive")
+            }
+            ModelError::FactorNotLower { row, col } => {
+                write!(f, "W[{row}][{col}] lies above the diagonal but is not zero")
+            }
+            ModelError::Scale { index } => write!(f, "scale of feature {index} is not positive"),
+            ModelError::LogMask => f.write_str("log mask names a feature beyond the dimension"),
+            ModelError::ThresholdOrder => {
+                f.write_str("thresholds must satisfy 0 <= clear <= alarm and alarm > 0")
+            }
+            ModelError::PolicyRange => {
+                write!(f, "raise_after and clear_after must lie in 1..={MAX_RUN}")
+            }
+            ModelError::Overflow => f.write_str("folding the scale into W overflows f32"),
+        }
+    }
+}
+
+impl core::error::Error for ModelError {}
+
+fn finite(values: &[f32], field: Field) -> Result<(), ModelError> {
+    match values.iter().position(|v| !v.is_finite()) {
+        None => Ok(()),
+        Some(i) => Err(ModelError::NotFinite {
+            field,
+            index: i as u8,
+        }),
+    }
+}
+
+impl<const N: usize> ModelParams<N> {
+    /// Check every rule a [`crate::Model`] relies on.
+    pub fn validate(&self) -> Result<(), ModelError> {
+        if N == 0 || N > MAX_FEATURES {
+            return Err(ModelError::Dimension { n: N });
+        }
+        let p = &self.preprocess;
+        finite(&p.offset, Field::Offset)?;
+        finite(&p.scale, Field::Scale)?;
+        if let Some(i) = p.scale.iter().position(|s| *s <= 0.0) {
+            return Err(ModelError::Scale { index: i as u8 });
+        }
+        if N < 32 && p.log_mask >> N != 0 {
+            return Err(ModelError::LogMask);
+        }
+        finite(&self.mean, Field::Mean)?;
+        for (i, row) in self.w.iter().enumerate() {
+            if row.iter().any(|v| !v.is_finite()) {
+                return Err(ModelError::NotFinite {
+                    field: Field::Factor,
+                    index: i as u8,
+                });
+            }
+            if let Some(j) = row.iter().skip(i + 1).position(|v| *v != 0.0) {
+                return Err(ModelError::FactorNotLower {
+                    row: i as u8,
+                    col: (i + 1 + j) as u8,
+                });
+            }
+            if row.get(i).is_none_or(|d| *d <= 0.0) {
+                return Err(ModelError::FactorDiagonal { index: i as u8 });
+            }
+        }
+        let t = &self.thresholds;
+        finite(&[t.alarm, t.clear], Field::Threshold)?;
+        if !(t.alarm > 0.0 && t.clear >= 0.0 && t.clear <= t.alarm) {
+            return Err(ModelError::ThresholdOrder);
+        }
+        let run = 1..=MAX_RUN;
+        if !run.contains(&self.policy.raise_after) || !run.contains(&self.policy.clear_after) {
+            return Err(ModelError::PolicyRange);
+        }
+        Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn good() -> ModelParams<2> {
+        ModelParams {
+            meta: ModelMeta::default(),
+            preprocess: Preprocess::identity(),
+            mean: [0.0; 2],
+            w: [[1.0, 0.0], [0.5, 2.0]],
+            thresholds: Thresholds {
+                alarm: 9.0,
+                clear: 6.0,
+            },
+            policy: AlarmPolicy::default(),
+        }
+    }
+
+    #[test]
+    fn accepts_a_good_model() {
+        assert_eq!(good().validate(), Ok(()));
+    }
+
+    #[test]
+    fn rejects_each_broken_rule() {
+        let mut p = good();
+        p.w[1][1] = 0.0;
+        assert_eq!(p.validate(), Err(ModelError::FactorDiagonal { index: 1 }));
+        let mut p = good();
+        p.w[0][1] = 0.1;
+        assert_eq!(
+            p.validate(),
+            Err(ModelError::FactorNotLower { row: 0, col: 1 })
+        );
+        let mut p = good();
+        p.mean[1] = f32::NAN;
+        assert_eq!(
+            p.validate(),
+            Err(ModelError::NotFinite {
+                field: Field::Mean,
+                index: 1
+            })
+        );
+        let mut p = good();
+        p.preprocess.scale[0] = -1.0;
+        assert_eq!(p.validate(), Err(ModelError::Scale { index: 0 }));
+        let mut p = good();
+        p.preprocess.log_mask = 0b100;
+        assert_eq!(p.validate(), Err(ModelError::LogMask));
+        let mut p = good();
+        p.thresholds.clear = 10.0;
+        assert_eq!(p.validate(), Err(ModelError::ThresholdOrder));
+        let mut p = good();
+        p.policy.raise_after = 0;
+        assert_eq!(p.validate(), Err(ModelError::PolicyRange));
+        let mut p = good();
+        p.policy.clear_after = MAX_RUN + 1;
+        assert_eq!(p.validate(), Err(ModelError::PolicyRange));
+    }
+}

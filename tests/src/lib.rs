@@ -1,0 +1,1 @@
+//! Cross-crate and outside-reference tests live in `tests/tests/`.
