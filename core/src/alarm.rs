@@ -379,7 +379,9 @@ mod tests {
         let s = a.update(&Err(ReadingFault::Overflow));
         assert_eq!(
             kinds(&s).as_slice(),
-            &[EventKind::Fault(FaultCause::Reading(ReadingFault::Overflow))]
+            &[EventKind::Fault(FaultCause::Reading(
+                ReadingFault::Overflow
+            ))]
         );
         let s = a.update(&sc(20.0));
         assert!(!s.fault && !s.alarm);

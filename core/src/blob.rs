@@ -252,7 +252,12 @@ pub fn encode<const N: usize>(
         buf,
         pos: HEADER_LEN,
     };
-    let (m, p, t, pol) = (&params.meta, &params.preprocess, &params.thresholds, &params.policy);
+    let (m, p, t, pol) = (
+        &params.meta,
+        &params.preprocess,
+        &params.thresholds,
+        &params.policy,
+    );
     w.put(&m.model_id)?;
     w.put(&m.trained_at)?;
     w.put(&m.sequence)?;
@@ -273,7 +278,9 @@ pub fn encode<const N: usize>(
     let buf = w.buf;
     let flags = if pol.latch { FLAG_LATCH } else { 0 };
     let [l0, l1] = len16.to_le_bytes();
-    let head = [MAGIC[0], MAGIC[1], MAGIC[2], MAGIC[3], VERSION, N as u8, flags, 0, l0, l1];
+    let head = [
+        MAGIC[0], MAGIC[1], MAGIC[2], MAGIC[3], VERSION, N as u8, flags, 0, l0, l1,
+    ];
     buf.get_mut(..HEADER_LEN)
         .ok_or(too_small)?
         .copy_from_slice(&head);
@@ -410,6 +417,37 @@ mod tests {
     }
 
     #[test]
+    fn blob_size_for_n8() {
+        // The representative model of FORMAT.md's "Size" section.
+        let mut w = [[0.0f32; 8]; 8];
+        for (i, row) in w.iter_mut().enumerate() {
+            row[i] = 1.0;
+        }
+        let p = ModelParams::<8> {
+            meta: ModelMeta {
+                model_id: 0x00AB_CDEF,
+                trained_at: 1_780_000_000,
+                sequence: 1,
+            },
+            preprocess: Preprocess::identity(),
+            mean: [0.0; 8],
+            w,
+            thresholds: Thresholds {
+                alarm: 26.1,
+                clear: 20.0,
+            },
+            policy: AlarmPolicy {
+                raise_after: 3,
+                clear_after: 300,
+                latch: false,
+            },
+        };
+        let mut buf = [0u8; max_len(8)];
+        assert_eq!(encode(&p, &mut buf), Ok(276));
+        assert_eq!(max_len(8), 293);
+    }
+
+    #[test]
     fn round_trip() {
         let mut buf = [0u8; max_len(2)];
         let n = encode(&params(), &mut buf).unwrap();
@@ -421,7 +459,10 @@ mod tests {
         let mut buf = [0u8; max_len(2)];
         let n = encode(&params(), &mut buf).unwrap();
         let good = &buf[..n];
-        assert_eq!(decode::<2>(&good[..5]), Err(DecodeError::TooShort { len: 5 }));
+        assert_eq!(
+            decode::<2>(&good[..5]),
+            Err(DecodeError::TooShort { len: 5 })
+        );
         let mut b = [0u8; max_len(2)];
         b[..n].copy_from_slice(good);
         b[0] = b'X';
@@ -431,7 +472,10 @@ mod tests {
         assert_eq!(decode::<2>(&b[..n]), Err(DecodeError::Version { found: 2 }));
         b[..n].copy_from_slice(good);
         b[6] = 0x81;
-        assert_eq!(decode::<2>(&b[..n]), Err(DecodeError::Flags { found: 0x81 }));
+        assert_eq!(
+            decode::<2>(&b[..n]),
+            Err(DecodeError::Flags { found: 0x81 })
+        );
         assert_eq!(
             decode::<3>(good),
             Err(DecodeError::Dimension {

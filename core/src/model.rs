@@ -118,7 +118,12 @@ impl<const N: usize> Model<N> {
         params.validate()?;
         let p = &params.preprocess;
         let mut center = [0.0f32; N];
-        for (((c, o), m), s) in center.iter_mut().zip(&p.offset).zip(&params.mean).zip(&p.scale) {
+        for (((c, o), m), s) in center
+            .iter_mut()
+            .zip(&p.offset)
+            .zip(&params.mean)
+            .zip(&p.scale)
+        {
             *c = o + m / s;
         }
         let mut v = [[0.0f32; N]; N];
@@ -185,13 +190,11 @@ impl<const N: usize> Model<N> {
         } else {
             for (i, ((di, xi), ci)) in d.iter_mut().zip(x).zip(&self.center).enumerate() {
                 let t = if (mask >> i) & 1 == 1 {
-                    if !(*xi > 0.0) {
-                        // NaN fails `> 0` too; report it as what it is.
-                        return Err(if xi.is_nan() {
-                            ReadingFault::NotFinite { feature: i as u8 }
-                        } else {
-                            ReadingFault::LogDomain { feature: i as u8 }
-                        });
+                    if xi.is_nan() {
+                        return Err(ReadingFault::NotFinite { feature: i as u8 });
+                    }
+                    if *xi <= 0.0 {
+                        return Err(ReadingFault::LogDomain { feature: i as u8 });
                     }
                     libm::logf(*xi)
                 } else {
