@@ -14,38 +14,134 @@
 macro_rules! with_dim {
     ($n:expr, $N:ident => $body:block) => {
         match $n {
-            1 => { const $N: usize = 1; Some($body) }
-            2 => { const $N: usize = 2; Some($body) }
-            3 => { const $N: usize = 3; Some($body) }
-            4 => { const $N: usize = 4; Some($body) }
-            5 => { const $N: usize = 5; Some($body) }
-            6 => { const $N: usize = 6; Some($body) }
-            7 => { const $N: usize = 7; Some($body) }
-            8 => { const $N: usize = 8; Some($body) }
-            9 => { const $N: usize = 9; Some($body) }
-            10 => { const $N: usize = 10; Some($body) }
-            11 => { const $N: usize = 11; Some($body) }
-            12 => { const $N: usize = 12; Some($body) }
-            13 => { const $N: usize = 13; Some($body) }
-            14 => { const $N: usize = 14; Some($body) }
-            15 => { const $N: usize = 15; Some($body) }
-            16 => { const $N: usize = 16; Some($body) }
-            17 => { const $N: usize = 17; Some($body) }
-            18 => { const $N: usize = 18; Some($body) }
-            19 => { const $N: usize = 19; Some($body) }
-            20 => { const $N: usize = 20; Some($body) }
-            21 => { const $N: usize = 21; Some($body) }
-            22 => { const $N: usize = 22; Some($body) }
-            23 => { const $N: usize = 23; Some($body) }
-            24 => { const $N: usize = 24; Some($body) }
-            25 => { const $N: usize = 25; Some($body) }
-            26 => { const $N: usize = 26; Some($body) }
-            27 => { const $N: usize = 27; Some($body) }
-            28 => { const $N: usize = 28; Some($body) }
-            29 => { const $N: usize = 29; Some($body) }
-            30 => { const $N: usize = 30; Some($body) }
-            31 => { const $N: usize = 31; Some($body) }
-            32 => { const $N: usize = 32; Some($body) }
+            1 => {
+                const $N: usize = 1;
+                Some($body)
+            }
+            2 => {
+                const $N: usize = 2;
+                Some($body)
+            }
+            3 => {
+                const $N: usize = 3;
+                Some($body)
+            }
+            4 => {
+                const $N: usize = 4;
+                Some($body)
+            }
+            5 => {
+                const $N: usize = 5;
+                Some($body)
+            }
+            6 => {
+                const $N: usize = 6;
+                Some($body)
+            }
+            7 => {
+                const $N: usize = 7;
+                Some($body)
+            }
+            8 => {
+                const $N: usize = 8;
+                Some($body)
+            }
+            9 => {
+                const $N: usize = 9;
+                Some($body)
+            }
+            10 => {
+                const $N: usize = 10;
+                Some($body)
+            }
+            11 => {
+                const $N: usize = 11;
+                Some($body)
+            }
+            12 => {
+                const $N: usize = 12;
+                Some($body)
+            }
+            13 => {
+                const $N: usize = 13;
+                Some($body)
+            }
+            14 => {
+                const $N: usize = 14;
+                Some($body)
+            }
+            15 => {
+                const $N: usize = 15;
+                Some($body)
+            }
+            16 => {
+                const $N: usize = 16;
+                Some($body)
+            }
+            17 => {
+                const $N: usize = 17;
+                Some($body)
+            }
+            18 => {
+                const $N: usize = 18;
+                Some($body)
+            }
+            19 => {
+                const $N: usize = 19;
+                Some($body)
+            }
+            20 => {
+                const $N: usize = 20;
+                Some($body)
+            }
+            21 => {
+                const $N: usize = 21;
+                Some($body)
+            }
+            22 => {
+                const $N: usize = 22;
+                Some($body)
+            }
+            23 => {
+                const $N: usize = 23;
+                Some($body)
+            }
+            24 => {
+                const $N: usize = 24;
+                Some($body)
+            }
+            25 => {
+                const $N: usize = 25;
+                Some($body)
+            }
+            26 => {
+                const $N: usize = 26;
+                Some($body)
+            }
+            27 => {
+                const $N: usize = 27;
+                Some($body)
+            }
+            28 => {
+                const $N: usize = 28;
+                Some($body)
+            }
+            29 => {
+                const $N: usize = 29;
+                Some($body)
+            }
+            30 => {
+                const $N: usize = 30;
+                Some($body)
+            }
+            31 => {
+                const $N: usize = 31;
+                Some($body)
+            }
+            32 => {
+                const $N: usize = 32;
+                Some($body)
+            }
             _ => None,
         }
     };
@@ -53,6 +149,103 @@ macro_rules! with_dim {
 
 /// The largest dimension [`with_dim!`] handles, the same as the core's limit.
 pub const MAX_DIM: usize = ellipsoid_core::MAX_FEATURES;
+
+use ellipsoid_core::{
+    blob, AlarmPolicy, DecodeError, Model, ModelMeta, ModelParams, ReadingFault, Scored, Thresholds,
+};
+
+/// A decoded core model whose dimension is known only at run time.
+///
+/// Every method calls straight into the core's `Model<N>`: this is a thin dispatch, not a copy of
+/// the scoring.
+pub trait AnyModel: Send + Sync {
+    /// Number of features.
+    fn n(&self) -> usize;
+    /// [`Model::score`]. `x` must hold `n()` values.
+    fn score(&self, x: &[f32]) -> Result<Scored, ReadingFault>;
+    /// [`Model::explain`]: the score and the per-feature contributions.
+    fn explain(&self, x: &[f32]) -> Result<(Scored, Vec<f32>), ReadingFault>;
+    /// [`Model::log_density`].
+    fn log_density(&self, x: &[f32]) -> Result<f32, ReadingFault>;
+    /// The parameters, as plain vectors.
+    fn params(&self) -> ParamsView;
+    /// The size of the decoded `Model<N>` in bytes, as on the device.
+    fn ram_bytes(&self) -> usize;
+}
+
+/// [`ModelParams`] with the dimension erased.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ParamsView {
+    /// Identifier, training time, sequence.
+    pub meta: ModelMeta,
+    /// Bit `i`: feature `i` is log-transformed.
+    pub log_mask: u32,
+    /// Preprocessing offsets.
+    pub offset: Vec<f32>,
+    /// Preprocessing scales.
+    pub scale: Vec<f32>,
+    /// Mean in the standardised space.
+    pub mean: Vec<f32>,
+    /// `W`, row-major `n × n`, lower triangle.
+    pub w: Vec<f32>,
+    /// Thresholds.
+    pub thresholds: Thresholds,
+    /// Alarm policy.
+    pub policy: AlarmPolicy,
+}
+
+fn fixed<const N: usize>(x: &[f32]) -> [f32; N] {
+    let mut a = [f32::NAN; N];
+    for (d, s) in a.iter_mut().zip(x) {
+        *d = *s;
+    }
+    a
+}
+
+impl<const N: usize> AnyModel for Model<N> {
+    fn n(&self) -> usize {
+        N
+    }
+    fn score(&self, x: &[f32]) -> Result<Scored, ReadingFault> {
+        Model::score(self, &fixed::<N>(x))
+    }
+    fn explain(&self, x: &[f32]) -> Result<(Scored, Vec<f32>), ReadingFault> {
+        let e = Model::explain(self, &fixed::<N>(x))?;
+        Ok((e.score, e.contributions.to_vec()))
+    }
+    fn log_density(&self, x: &[f32]) -> Result<f32, ReadingFault> {
+        Model::log_density(self, &fixed::<N>(x))
+    }
+    fn params(&self) -> ParamsView {
+        let p: &ModelParams<N> = Model::params(self);
+        ParamsView {
+            meta: p.meta,
+            log_mask: p.preprocess.log_mask,
+            offset: p.preprocess.offset.to_vec(),
+            scale: p.preprocess.scale.to_vec(),
+            mean: p.mean.to_vec(),
+            w: p.w.iter().flatten().copied().collect(),
+            thresholds: p.thresholds,
+            policy: p.policy,
+        }
+    }
+    fn ram_bytes(&self) -> usize {
+        core::mem::size_of::<Model<N>>()
+    }
+}
+
+/// Decode a blob of any supported dimension through the core's decoder.
+pub fn decode_any(bytes: &[u8]) -> Result<Box<dyn AnyModel>, DecodeError> {
+    let header = blob::Header::parse(bytes)?;
+    let n = usize::from(header.n);
+    with_dim!(n, N => {
+        Model::<N>::from_blob(bytes).map(|m| Box::new(m) as Box<dyn AnyModel>)
+    })
+    .unwrap_or(Err(DecodeError::Dimension {
+        found: header.n,
+        expected: MAX_DIM as u8,
+    }))
+}
 
 #[cfg(test)]
 mod tests {
@@ -63,5 +256,30 @@ mod tests {
         }
         assert_eq!(with_dim!(0usize, N => { N }), None);
         assert_eq!(with_dim!(33usize, N => { N }), None);
+    }
+
+    #[test]
+    fn decode_any_dispatches_to_the_core() {
+        use ellipsoid_core::{Preprocess, Verdict};
+        let params = super::ModelParams::<3> {
+            meta: Default::default(),
+            preprocess: Preprocess::identity(),
+            mean: [0.0; 3],
+            w: [[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.0, 0.0, 1.0]],
+            thresholds: super::Thresholds {
+                alarm: 4.0,
+                clear: 1.0,
+            },
+            policy: Default::default(),
+        };
+        let mut buf = [0u8; super::blob::max_len(3)];
+        let len = super::blob::encode(&params, &mut buf).unwrap();
+        let m = super::decode_any(&buf[..len]).unwrap();
+        assert_eq!(m.n(), 3);
+        let s = m.score(&[1.0, 1.0, 1.0]).unwrap();
+        assert_eq!(s.d2, 3.0);
+        assert_eq!(s.verdict, Verdict::Below);
+        assert!(m.score(&[1.0, f32::NAN, 1.0]).is_err());
+        assert!(super::decode_any(&buf[..len - 1]).is_err());
     }
 }

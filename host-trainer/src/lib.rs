@@ -15,9 +15,13 @@
 //! * [`report`]: one self-contained HTML file with inline SVG plots.
 //! * [`demo_data`], [`demo`]: the invented booster-pump scenario, end to end.
 //! * [`output`]: write to a temporary file, then rename.
+//! * [`card`]: the model card, the JSON beside each blob that names its features.
+//! * [`dims`]: from a run-time dimension to the core's `const N`.
+//! * [`train`], [`inspect`], [`assess`]: the `fit`, `inspect` and `evaluate` commands.
 //! * [`cli`]: the `ellipsoid` command line.
 #![forbid(unsafe_code)]
 
+pub mod card;
 pub mod cli;
 pub mod demo;
 pub mod demo_data;

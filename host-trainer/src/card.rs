@@ -1,0 +1,125 @@
+//! The model card: a JSON file written beside every blob, `model.blob` → `model.json`.
+//!
+//! The blob holds only what the device needs. The card holds what a person and the trainer's
+//! other commands need: the feature names (to match CSV columns), how the threshold was chosen,
+//! the reading rate it was chosen for. It carries the blob's CRC so a card that does not belong
+//! to its blob is refused.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{bail, Context, Result};
+use serde::{Deserialize, Serialize};
+
+use crate::output;
+
+/// What `fit` knew about a model that the blob does not carry.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ModelCard {
+    /// Always `"ellipsoid-model-card"`.
+    pub kind: String,
+    /// Card format version, 1.
+    pub version: u32,
+    /// Feature names in model order: CSV columns are matched against these.
+    pub features: Vec<String>,
+    /// The features that are log-transformed on the device.
+    pub log_features: Vec<String>,
+    /// The CRC-32 in the last four bytes of the blob this card describes.
+    pub blob_crc: u32,
+    /// Bytes in that blob.
+    pub blob_len: usize,
+    /// How the alarm threshold was chosen (`chi-square`, `empirical`, `f1`).
+    pub threshold_method: String,
+    /// The per-reading false-alarm probability aimed at.
+    pub alpha: f64,
+    /// Readings a second the false-alarm figures assume.
+    pub rate_hz: f64,
+    /// The baseline file the model was trained on.
+    pub trained_on: String,
+}
+
+impl ModelCard {
+    /// The card's path for a blob path: the same name with the extension `json`.
+    pub fn path_for(blob: &Path) -> PathBuf {
+        blob.with_extension("json")
+    }
+
+    /// Write the card atomically.
+    pub fn write(&self, path: &Path) -> Result<()> {
+        output::write_atomic(path, |w| {
+            serde_json::to_writer_pretty(&mut *w, self)?;
+            w.write_all(b"\n")?;
+            Ok(())
+        })
+    }
+
+    /// Read the card beside `blob_path` and check it belongs to `blob`.
+    pub fn read_for(blob_path: &Path, blob: &[u8]) -> Result<Self> {
+        let path = Self::path_for(blob_path);
+        let text = std::fs::read_to_string(&path).with_context(|| {
+            format!(
+                "cannot read the model card {} that names the features of {} \
+                 (give --features NAME,NAME,... instead)",
+                path.display(),
+                blob_path.display()
+            )
+        })?;
+        let card: ModelCard = serde_json::from_str(&text)
+            .with_context(|| format!("{}: not a valid model card", path.display()))?;
+        if card.kind != "ellipsoid-model-card" || card.version != 1 {
+            bail!(
+                "{}: not an Ellipsoid model card of version 1",
+                path.display()
+            );
+        }
+        let crc = blob_crc(blob);
+        if card.blob_crc != crc || card.blob_len != blob.len() {
+            bail!(
+                "{} describes another blob (CRC {:#010x}, {} bytes) than {} (CRC {:#010x}, {} bytes)",
+                path.display(),
+                card.blob_crc,
+                card.blob_len,
+                blob_path.display(),
+                crc,
+                blob.len()
+            );
+        }
+        Ok(card)
+    }
+}
+
+/// The CRC stored in a blob's last four bytes (0 for a blob too short to hold one).
+pub fn blob_crc(blob: &[u8]) -> u32 {
+    match blob.len().checked_sub(4).and_then(|s| blob.get(s..)) {
+        Some(t) => u32::from_le_bytes([t[0], t[1], t[2], t[3]]),
+        None => 0,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn card_round_trips_and_refuses_another_blob() {
+        let dir = tempfile::tempdir().unwrap();
+        let blob_path = dir.path().join("m.blob");
+        let blob = [1u8, 2, 3, 4, 5, 6, 7, 8];
+        let card = ModelCard {
+            kind: "ellipsoid-model-card".into(),
+            version: 1,
+            features: vec!["a".into(), "b".into()],
+            log_features: vec![],
+            blob_crc: blob_crc(&blob),
+            blob_len: blob.len(),
+            threshold_method: "chi-square".into(),
+            alpha: 1e-4,
+            rate_hz: 1.0,
+            trained_on: "x.csv".into(),
+        };
+        card.write(&ModelCard::path_for(&blob_path)).unwrap();
+        assert_eq!(ModelCard::read_for(&blob_path, &blob).unwrap(), card);
+        let other = [1u8, 2, 3, 4, 5, 6, 7, 9];
+        let e = ModelCard::read_for(&blob_path, &other).unwrap_err();
+        assert!(e.to_string().contains("describes another blob"), "{e}");
+    }
+}
