@@ -163,8 +163,9 @@ pub trait AnyModel: Send + Sync {
     fn n(&self) -> usize;
     /// [`Model::score`]. `x` must hold `n()` values.
     fn score(&self, x: &[f32]) -> Result<Scored, ReadingFault>;
-    /// [`Model::explain`]: the score and the per-feature contributions.
-    fn explain(&self, x: &[f32]) -> Result<(Scored, Vec<f32>), ReadingFault>;
+    /// [`Model::explain`]: the score, the per-feature contributions, and the index of the largest
+    /// (the core's [`ellipsoid_core::Explained::top`], as the device reports it).
+    fn explain(&self, x: &[f32]) -> Result<(Scored, Vec<f32>, usize), ReadingFault>;
     /// [`Model::log_density`].
     fn log_density(&self, x: &[f32]) -> Result<f32, ReadingFault>;
     /// The parameters, as plain vectors.
@@ -209,9 +210,9 @@ impl<const N: usize> AnyModel for Model<N> {
     fn score(&self, x: &[f32]) -> Result<Scored, ReadingFault> {
         Model::score(self, &fixed::<N>(x))
     }
-    fn explain(&self, x: &[f32]) -> Result<(Scored, Vec<f32>), ReadingFault> {
+    fn explain(&self, x: &[f32]) -> Result<(Scored, Vec<f32>, usize), ReadingFault> {
         let e = Model::explain(self, &fixed::<N>(x))?;
-        Ok((e.score, e.contributions.to_vec()))
+        Ok((e.score, e.contributions.to_vec(), e.top().0))
     }
     fn log_density(&self, x: &[f32]) -> Result<f32, ReadingFault> {
         Model::log_density(self, &fixed::<N>(x))

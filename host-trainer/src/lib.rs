@@ -21,6 +21,7 @@
 //! * [`cli`]: the `ellipsoid` command line.
 #![forbid(unsafe_code)]
 
+pub mod assess;
 pub mod card;
 pub mod cli;
 pub mod demo;
@@ -29,6 +30,7 @@ pub mod diagnostics;
 pub mod dims;
 pub mod fit;
 pub mod ingest;
+pub mod inspect;
 pub mod mcd;
 pub mod metrics;
 pub mod output;
@@ -37,3 +39,4 @@ pub mod report;
 pub mod shrink;
 pub mod stats;
 pub mod threshold;
+pub mod train;

@@ -30,6 +30,13 @@ where
     tmp.as_file()
         .sync_all()
         .with_context(|| format!("while writing {}", path.display()))?;
+    // A temporary file is private (0600); the finished file gets the usual 0644.
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(tmp.path(), std::fs::Permissions::from_mode(0o644))
+            .with_context(|| format!("while writing {}", path.display()))?;
+    }
     tmp.persist(path)
         .with_context(|| format!("cannot move the finished file to {}", path.display()))?;
     Ok(())

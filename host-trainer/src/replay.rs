@@ -26,6 +26,8 @@ pub struct ReplayRow {
     pub score: Result<Scored, ReadingFault>,
     /// Per-feature contributions to d² (scored readings only).
     pub contributions: Option<Vec<f32>>,
+    /// The feature with the largest contribution, as the core picks it (scored readings only).
+    pub top: Option<usize>,
     /// Alarm line after this reading.
     pub alarm: bool,
     /// Fault line after this reading.
@@ -56,11 +58,7 @@ impl ReplayRow {
         if !self.above() {
             return None;
         }
-        let c = self.contributions.as_ref()?;
-        c.iter()
-            .enumerate()
-            .max_by(|a, b| a.1.total_cmp(b.1))
-            .map(|(i, _)| i)
+        self.top
     }
 }
 
@@ -85,9 +83,9 @@ impl<'m> Replayer<'m> {
     /// Score one reading (already in model feature order) and advance the alarm state machine.
     pub fn step(&mut self, x: &[f32]) -> ReplayRow {
         let score = self.model.score(x);
-        let contributions = match &score {
-            Ok(_) => self.model.explain(x).ok().map(|(_, c)| c),
-            Err(_) => None,
+        let (contributions, top) = match score.as_ref().ok().and(self.model.explain(x).ok()) {
+            Some((_, c, top)) => (Some(c), Some(top)),
+            None => (None, None),
         };
         let step = self.alarm.update(&score);
         let index = self.next;
@@ -96,6 +94,7 @@ impl<'m> Replayer<'m> {
             index,
             score,
             contributions,
+            top,
             alarm: step.alarm,
             fault: step.fault,
             events: step.events.iter().map(|e| e.kind).collect(),

@@ -1,0 +1,202 @@
+//! `ellipsoid evaluate`: score a labelled CSV through the core and measure how well the model and
+//! its alarm policy separate faults from healthy operation.
+
+use std::path::Path;
+
+use anyhow::Result;
+use statrs::distribution::{ChiSquared, ContinuousCDF};
+
+use crate::cli::{load_model, EvaluateArgs};
+use crate::dims::AnyModel;
+use crate::ingest::{CsvOptions, Reader};
+use crate::replay::{to_device, ReplayRow, Replayer};
+use crate::{inspect, metrics, output, report};
+
+/// A labelled stream after the core has scored it.
+pub struct Scored {
+    /// One row per reading.
+    pub rows: Vec<ReplayRow>,
+    /// The labels (true = anomalous).
+    pub labels: Vec<bool>,
+}
+
+impl Scored {
+    /// d² per reading, `None` for a fault.
+    pub fn d2(&self) -> Vec<Option<f32>> {
+        self.rows.iter().map(ReplayRow::d2).collect()
+    }
+
+    /// Alarm line per reading.
+    pub fn alarm(&self) -> Vec<bool> {
+        self.rows.iter().map(|r| r.alarm).collect()
+    }
+
+    /// The evaluation of this stream.
+    pub fn evaluate(&self, rate_hz: f64) -> metrics::Evaluation {
+        let above: Vec<bool> = self.rows.iter().map(ReplayRow::above).collect();
+        let fault: Vec<bool> = self.rows.iter().map(|r| r.fault).collect();
+        metrics::evaluate(
+            &self.d2(),
+            &above,
+            &self.alarm(),
+            &fault,
+            &self.labels,
+            rate_hz,
+        )
+    }
+}
+
+/// Replay a labelled CSV through `model` and its alarm state machine.
+pub fn score_labelled(
+    model: &dyn AnyModel,
+    features: &[String],
+    path: &Path,
+    label_column: &str,
+    timestamp: Option<String>,
+    delimiter: Option<u8>,
+    quiet: bool,
+) -> Result<Scored> {
+    let opts = CsvOptions {
+        delimiter,
+        columns: Some(features.to_vec()),
+        timestamp,
+        label: Some(label_column.to_string()),
+        skip_bad_rows: false,
+        allow_missing: true,
+        quiet,
+    };
+    let mut reader = Reader::open(path, &opts)?;
+    let mut rp = Replayer::new(model);
+    let mut x = vec![0.0f32; features.len()];
+    let (mut rows, mut labels) = (Vec::new(), Vec::new());
+    while let Some(row) = reader.next_row()? {
+        for (d, s) in x.iter_mut().zip(row.values) {
+            *d = to_device(*s);
+        }
+        labels.push(row.label.unwrap_or(false));
+        rows.push(rp.step(&x));
+    }
+    anyhow::ensure!(
+        !rows.is_empty(),
+        "{}: no readings to evaluate",
+        path.display()
+    );
+    Ok(Scored { rows, labels })
+}
+
+/// QQ points of the d² of readings labelled normal against chi-square(n) quantiles, at most 400.
+pub fn qq_points(d2: &[Option<f32>], labels: &[bool], n: usize) -> Vec<(f64, f64)> {
+    let mut v: Vec<f64> = d2
+        .iter()
+        .zip(labels)
+        .filter(|(_, l)| !**l)
+        .filter_map(|(d, _)| d.map(f64::from))
+        .collect();
+    v.sort_by(f64::total_cmp);
+    let Ok(chi) = ChiSquared::new(n as f64) else {
+        return Vec::new();
+    };
+    let m = v.len();
+    let step = (m / 400).max(1);
+    (0..m)
+        .step_by(step)
+        .map(|i| (chi.inverse_cdf((i as f64 + 0.5) / m as f64), v[i]))
+        .collect()
+}
+
+/// The correlation matrix the model encodes, rebuilt from its factor.
+pub fn model_correlation(model: &dyn AnyModel) -> Vec<f64> {
+    let p = model.params();
+    let n = model.n();
+    let cov = inspect::covariance(&p).unwrap_or_else(|| vec![0.0; n * n]);
+    crate::stats::correlation_of(&cov, n)
+}
+
+/// The readings where an alarm was raised, the largest d² first, with their contributions.
+pub fn top_alarms(rows: &[ReplayRow], most: usize) -> Vec<(usize, f32, Vec<f32>)> {
+    let mut raised: Vec<(usize, f32, Vec<f32>)> = rows
+        .iter()
+        .enumerate()
+        .filter(|(_, r)| r.events.contains(&ellipsoid_core::EventKind::Raised))
+        .filter_map(|(i, r)| Some((i, r.d2()?, r.contributions.clone()?)))
+        .collect();
+    raised.sort_by(|a, b| b.1.total_cmp(&a.1));
+    raised.truncate(most);
+    raised
+}
+
+/// Run `evaluate`.
+pub fn run(a: &EvaluateArgs) -> Result<()> {
+    let loaded = load_model(&a.model)?;
+    let rate = a
+        .rate_hz
+        .or(loaded.card.as_ref().map(|c| c.rate_hz))
+        .unwrap_or(1.0);
+    anyhow::ensure!(
+        rate.is_finite() && rate > 0.0,
+        "--rate-hz must be a positive number of readings a second"
+    );
+    let scored = score_labelled(
+        loaded.model.as_ref(),
+        &loaded.features,
+        &a.model.input,
+        &a.label_column,
+        a.timestamp.clone(),
+        a.delimiter,
+        a.quiet,
+    )?;
+    let eval = scored.evaluate(rate);
+    if let Some(path) = &a.report {
+        let p = loaded.model.params();
+        let d2 = scored.d2();
+        let data = report::ReportData {
+            title: format!("Ellipsoid evaluation of {}", a.model.input.display()),
+            subtitle: format!(
+                "model {} ({} features), {} readings at {} Hz",
+                a.model.model.display(),
+                loaded.features.len(),
+                scored.rows.len(),
+                rate
+            ),
+            features: loaded.features.clone(),
+            summary: Vec::new(),
+            d2: d2.clone(),
+            rate_hz: rate,
+            alarm_threshold: f64::from(p.thresholds.alarm),
+            clear_threshold: f64::from(p.thresholds.clear),
+            alarm: scored.alarm(),
+            labels: Some(scored.labels.clone()),
+            episodes: metrics::label_events(&scored.labels)
+                .into_iter()
+                .enumerate()
+                .map(|(i, (s, e))| (format!("event {}", i + 1), s, e))
+                .collect(),
+            baseline_d2: d2
+                .iter()
+                .zip(&scored.labels)
+                .filter(|(_, l)| !**l)
+                .filter_map(|(d, _)| d.map(f64::from))
+                .collect(),
+            qq: qq_points(&d2, &scored.labels, loaded.features.len()),
+            corr: model_correlation(loaded.model.as_ref()),
+            top_alarms: top_alarms(&scored.rows, 8),
+            ..Default::default()
+        };
+        let html = report::render(&data)?;
+        output::write_bytes(path, html.as_bytes())?;
+    }
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&eval)?);
+    } else {
+        println!(
+            "Evaluated {} with {}:",
+            a.model.input.display(),
+            a.model.model.display()
+        );
+        print!("{eval}");
+        if let Some(path) = &a.report {
+            println!("Wrote {}.", path.display());
+        }
+    }
+    Ok(())
+}

@@ -1,0 +1,151 @@
+//! `ellipsoid inspect`: validate a blob with the core's decoder and show everything in it.
+
+use std::path::Path;
+
+use anyhow::{Context, Result};
+use nalgebra::DMatrix;
+use serde_json::json;
+
+use crate::card::ModelCard;
+use crate::dims::{decode_any, ParamsView};
+
+/// The covariance of the (log-transformed) reading in its own units, rebuilt from the blob:
+/// `Σᵤ = (WᵀW)⁻¹` in the standardised space, then `Σ = S⁻¹ Σᵤ S⁻¹` with `S = diag(scale)`.
+pub fn covariance(p: &ParamsView) -> Option<Vec<f64>> {
+    let n = p.mean.len();
+    let w = DMatrix::from_fn(n, n, |i, j| f64::from(p.w[i * n + j]));
+    let precision = w.transpose() * &w;
+    let sigma_u = precision.try_inverse()?;
+    Some(
+        (0..n * n)
+            .map(|k| {
+                let (i, j) = (k / n, k % n);
+                sigma_u[(i, j)] / (f64::from(p.scale[i]) * f64::from(p.scale[j]))
+            })
+            .collect(),
+    )
+}
+
+/// The mean of the (log-transformed) reading in its own units: `offset + mean / scale`.
+pub fn raw_mean(p: &ParamsView) -> Vec<f64> {
+    p.offset
+        .iter()
+        .zip(&p.mean)
+        .zip(&p.scale)
+        .map(|((o, m), s)| f64::from(*o) + f64::from(*m) / f64::from(*s))
+        .collect()
+}
+
+/// Run `inspect`.
+pub fn run(path: &Path, as_json: bool) -> Result<()> {
+    let bytes =
+        std::fs::read(path).with_context(|| format!("cannot read the blob {}", path.display()))?;
+    let model = decode_any(&bytes)
+        .map_err(|e| anyhow::anyhow!("{}: not a usable model blob: {e}", path.display()))?;
+    let card = ModelCard::read_for(path, &bytes).ok();
+    let p = model.params();
+    let n = model.n();
+    let names: Vec<String> = match &card {
+        Some(c) => c.features.clone(),
+        None => (0..n).map(|i| format!("feature_{i}")).collect(),
+    };
+    let cov = covariance(&p).unwrap_or_default();
+    let mean = raw_mean(&p);
+    let logs: Vec<bool> = (0..n).map(|i| (p.log_mask >> i) & 1 == 1).collect();
+    if as_json {
+        let v = json!({
+            "file": path.display().to_string(),
+            "valid": true,
+            "blob_bytes": bytes.len(),
+            "decoded_model_ram_bytes": model.ram_bytes(),
+            "features": names,
+            "dimension": n,
+            "model_id": p.meta.model_id,
+            "trained_at": p.meta.trained_at,
+            "sequence": p.meta.sequence,
+            "log_transformed": logs,
+            "offset": p.offset,
+            "scale": p.scale,
+            "mean_standardised": p.mean,
+            "mean": mean,
+            "w": (0..n).map(|i| p.w[i * n..i * n + i + 1].to_vec()).collect::<Vec<_>>(),
+            "covariance": (0..n).map(|i| cov[i * n..(i + 1) * n].to_vec()).collect::<Vec<_>>(),
+            "alarm_threshold": p.thresholds.alarm,
+            "clear_threshold": p.thresholds.clear,
+            "raise_after": p.policy.raise_after,
+            "clear_after": p.policy.clear_after,
+            "latch": p.policy.latch,
+            "card": card,
+        });
+        println!("{}", serde_json::to_string_pretty(&v)?);
+        return Ok(());
+    }
+    println!(
+        "{}: a valid Ellipsoid model blob (format 1)",
+        path.display()
+    );
+    println!(
+        "  {} bytes; decoded, the model takes {} bytes of RAM (size_of Model<{n}>)",
+        bytes.len(),
+        model.ram_bytes()
+    );
+    println!(
+        "  model id {:#010x}, sequence {}, trained at {} ({} s since 1970)",
+        p.meta.model_id,
+        p.meta.sequence,
+        humantime::format_rfc3339_seconds(
+            std::time::UNIX_EPOCH + std::time::Duration::from_secs(p.meta.trained_at)
+        ),
+        p.meta.trained_at
+    );
+    if card.is_none() {
+        println!("  (no model card beside it: feature names unknown)");
+    }
+    println!(
+        "  alarm when d² > {} for {} reading(s) in a row; clear when d² < {} for {}{}",
+        p.thresholds.alarm,
+        p.policy.raise_after,
+        p.thresholds.clear,
+        p.policy.clear_after,
+        if p.policy.latch {
+            "; latched until reset"
+        } else {
+            ""
+        }
+    );
+    println!();
+    let width = names.iter().map(|s| s.len()).max().unwrap_or(8).max(8);
+    println!(
+        "  {:<width$}  {:>5}  {:>14}  {:>14}  {:>12}",
+        "feature", "log", "mean", "sd", "scale"
+    );
+    for i in 0..n {
+        println!(
+            "  {:<width$}  {:>5}  {:>14.6}  {:>14.6}  {:>12.6e}",
+            names[i],
+            if logs[i] { "yes" } else { "no" },
+            mean[i],
+            cov.get(i * n + i).map_or(f64::NAN, |v| v.sqrt()),
+            p.scale[i]
+        );
+    }
+    println!();
+    println!("  W = L⁻¹ (standardised space, lower triangle):");
+    for i in 0..n {
+        let row: Vec<String> = p.w[i * n..i * n + i + 1]
+            .iter()
+            .map(|v| format!("{v:>10.5}"))
+            .collect();
+        println!("    {}", row.join(" "));
+    }
+    println!();
+    println!("  covariance rebuilt from W, in the readings' units:");
+    for i in 0..n {
+        let row: Vec<String> = cov[i * n..(i + 1) * n]
+            .iter()
+            .map(|v| format!("{v:>12.5e}"))
+            .collect();
+        println!("    {}", row.join(" "));
+    }
+    Ok(())
+}

@@ -1,0 +1,788 @@
+//! `ellipsoid fit`: from a baseline file to a defended threshold and a flashable blob.
+//!
+//! The steps: fit in `f64` ([`crate::fit`]); work out every candidate threshold
+//! ([`crate::threshold`]); build the blob through the core's encoder and read it back through the
+//! core's decoder; replay the held-out baseline through the core's alarm state machine to measure
+//! the false alarms a day that the policy really gives; write blob, card and report atomically.
+
+use std::fmt::Write as _;
+use std::path::Path;
+
+use anyhow::{Context, Result};
+use ellipsoid_core::{blob, AlarmMachine, AlarmPolicy, ModelMeta, Scored, Thresholds, Verdict};
+use serde::Serialize;
+
+use crate::card::{blob_crc, ModelCard};
+use crate::cli::{FitArgs, ShrinkArg};
+use crate::dims::{decode_any, AnyModel};
+use crate::fit::{fit_file, FitOptions, Fitted, Shrinkage};
+use crate::ingest::{CsvOptions, Reader};
+use crate::replay::to_device;
+use crate::threshold::{self, Candidates, Method, Target, SECONDS_PER_DAY};
+use crate::{metrics, output, report};
+
+/// What replaying the held-out baseline through the core's alarm state machine gave.
+#[derive(Clone, Debug, Serialize)]
+pub struct HoldoutCheck {
+    /// Held-out readings.
+    pub readings: u64,
+    /// Hours of operation they cover at the stated rate.
+    pub hours: f64,
+    /// Readings above the alarm threshold.
+    pub readings_above: u64,
+    /// The same, as a fraction of the held-out readings.
+    pub fraction_above: f64,
+    /// Alarms the policy raised (each is a false alarm: the baseline is healthy).
+    pub alarms_raised: u64,
+    /// Those alarms scaled to a day.
+    pub false_alarms_per_day: f64,
+    /// One-sided 95 % upper bound on the daily rate, treating alarms as a Poisson count over the
+    /// hold-out (`χ²₀.₉₅(2k + 2) / 2` alarms in the hold-out's length; 3 for k = 0). A short hold-out
+    /// with no alarm only bounds the rate, and this says by how much.
+    pub false_alarms_per_day_upper95: f64,
+}
+
+/// The one-sided 95 % upper bound on a Poisson mean after observing `k` events.
+pub fn poisson_upper95(k: u64) -> f64 {
+    use statrs::distribution::{ChiSquared, ContinuousCDF};
+    let chi = ChiSquared::new(2.0 * k as f64 + 2.0).expect("positive degrees of freedom");
+    chi.inverse_cdf(0.95) / 2.0
+}
+
+/// Everything `fit` works out.
+pub struct Trained {
+    /// The fitted statistics.
+    pub fitted: Fitted,
+    /// Every candidate threshold.
+    pub candidates: Candidates,
+    /// The method used for the blob.
+    pub method: Method,
+    /// Thresholds in the blob.
+    pub thresholds: Thresholds,
+    /// Policy in the blob.
+    pub policy: AlarmPolicy,
+    /// The blob's bytes.
+    pub blob: Vec<u8>,
+    /// The model decoded back from those bytes by the core.
+    pub model: Box<dyn AnyModel>,
+    /// The card that goes beside the blob.
+    pub card: ModelCard,
+    /// The held-out replay, if there was a hold-out.
+    pub holdout: Option<HoldoutCheck>,
+    /// Readings a second.
+    pub rate_hz: f64,
+    /// Baseline file.
+    pub baseline: String,
+}
+
+/// Encode fitted statistics into a blob with the core's encoder and decode it back with the core's
+/// decoder, so that everything downstream uses exactly what the device will.
+pub fn build_blob(
+    fitted: &Fitted,
+    thresholds: Thresholds,
+    policy: AlarmPolicy,
+    meta: ModelMeta,
+) -> Result<(Vec<u8>, Box<dyn AnyModel>)> {
+    let n = fitted.features.len();
+    let bytes = crate::with_dim!(n, N => {
+        let params = fitted.params::<N>(thresholds, policy, meta);
+        let mut buf = vec![0u8; blob::max_len(N)];
+        let len = blob::encode(&params, &mut buf)
+            .map_err(|e| anyhow::anyhow!("the fitted model cannot be encoded: {e}"))?;
+        buf.truncate(len);
+        buf
+    })
+    .ok_or_else(|| {
+        anyhow::anyhow!(
+            "{n} features: a model holds 1 to {} features",
+            crate::dims::MAX_DIM
+        )
+    })?;
+    let model = decode_any(&bytes)
+        .map_err(|e| anyhow::anyhow!("the core refused the blob it was given: {e}"))?;
+    Ok((bytes, model))
+}
+
+/// Score a CSV (columns matched to `features`) through `model`; faults give `None`.
+/// Returns the d² stream and, if `label` is given, the labels.
+pub fn score_file(
+    model: &dyn AnyModel,
+    features: &[String],
+    path: &Path,
+    label: Option<&str>,
+    quiet: bool,
+) -> Result<(Vec<Option<f32>>, Vec<bool>)> {
+    let opts = CsvOptions {
+        delimiter: None,
+        columns: Some(features.to_vec()),
+        timestamp: None,
+        label: label.map(str::to_string),
+        skip_bad_rows: false,
+        allow_missing: true,
+        quiet,
+    };
+    let mut reader = Reader::open(path, &opts)?;
+    let mut x = vec![0.0f32; features.len()];
+    let (mut d2, mut labels) = (Vec::new(), Vec::new());
+    while let Some(row) = reader.next_row()? {
+        for (d, s) in x.iter_mut().zip(row.values) {
+            *d = to_device(*s);
+        }
+        d2.push(model.score(&x).ok().map(|s| s.d2));
+        if let Some(l) = row.label {
+            labels.push(l);
+        }
+    }
+    Ok((d2, labels))
+}
+
+/// Replay held-out d² through the core's alarm state machine.
+pub fn check_holdout(
+    d2: &[f32],
+    thresholds: Thresholds,
+    policy: AlarmPolicy,
+    rate_hz: f64,
+) -> HoldoutCheck {
+    let mut machine = AlarmMachine::new(thresholds, policy);
+    let (mut above, mut raised) = (0u64, 0u64);
+    for v in d2 {
+        let verdict = if *v > thresholds.alarm {
+            Verdict::Above
+        } else {
+            Verdict::Below
+        };
+        above += u64::from(verdict == Verdict::Above);
+        let step = machine.update(&Ok(Scored { d2: *v, verdict }));
+        raised += step
+            .events
+            .iter()
+            .filter(|e| e.kind == ellipsoid_core::EventKind::Raised)
+            .count() as u64;
+    }
+    let readings = d2.len() as u64;
+    let days = readings as f64 / rate_hz / SECONDS_PER_DAY;
+    HoldoutCheck {
+        readings,
+        hours: days * 24.0,
+        readings_above: above,
+        fraction_above: if readings == 0 {
+            0.0
+        } else {
+            above as f64 / readings as f64
+        },
+        alarms_raised: raised,
+        false_alarms_per_day: if days > 0.0 {
+            raised as f64 / days
+        } else {
+            0.0
+        },
+        false_alarms_per_day_upper95: if days > 0.0 {
+            poisson_upper95(raised) / days
+        } else {
+            f64::INFINITY
+        },
+    }
+}
+
+fn now_unix() -> u64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0, |d| d.as_secs())
+}
+
+/// A model id derived from the fitted statistics: the CRC-32 of their bits and the feature names.
+fn derived_id(f: &Fitted) -> u32 {
+    let mut bytes = Vec::new();
+    for name in &f.features {
+        bytes.extend_from_slice(name.as_bytes());
+        bytes.push(0);
+    }
+    for v in f.mean.iter().chain(&f.cov) {
+        bytes.extend_from_slice(&v.to_le_bytes());
+    }
+    bytes.extend_from_slice(&f.rows_used.to_le_bytes());
+    blob::checksum(&bytes)
+}
+
+/// Fit, choose the threshold, build the blob, check the hold-out. Writes nothing.
+pub fn train(a: &FitArgs) -> Result<Trained> {
+    anyhow::ensure!(
+        (0.0..1.0).contains(&a.holdout),
+        "--holdout must be a fraction in [0, 1), not {}",
+        a.holdout
+    );
+    anyhow::ensure!(
+        a.clear_fraction > 0.0 && a.clear_fraction <= 1.0,
+        "--clear-fraction must lie in (0, 1], not {}",
+        a.clear_fraction
+    );
+    let target = match a.alpha {
+        Some(p) => Target::PerReading(p),
+        None => Target::PerDay {
+            alarms_per_day: a.alarms_per_day,
+            rate_hz: a.rate_hz,
+        },
+    };
+    target.check()?;
+    anyhow::ensure!(
+        a.rate_hz.is_finite() && a.rate_hz > 0.0,
+        "--rate-hz must be a positive number of readings a second"
+    );
+    let policy = AlarmPolicy {
+        raise_after: a.raise_after,
+        clear_after: a.clear_after,
+        latch: a.latch,
+    };
+    let shrinkage = match a.shrinkage {
+        ShrinkArg::None => Shrinkage::None,
+        ShrinkArg::LedoitWolf => Shrinkage::LedoitWolf,
+        ShrinkArg::Diagonal => Shrinkage::Diagonal(a.loading),
+    };
+    let opts = FitOptions {
+        csv: a.csv.options(None, false),
+        log_columns: a.log_columns.clone(),
+        shrinkage,
+        robust: a.robust,
+        holdout: a.holdout,
+        threads: a
+            .threads
+            .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get())),
+    };
+    let fitted = fit_file(&a.baseline, &opts)?;
+    let n = fitted.features.len();
+    let alpha = target.alpha();
+    let meta = ModelMeta {
+        model_id: a.model_id.unwrap_or_else(|| derived_id(&fitted)),
+        trained_at: a.trained_at.unwrap_or_else(now_unix),
+        sequence: a.sequence,
+    };
+
+    // The F1 candidate needs d² of the validation file, which does not depend on the threshold.
+    let f1 = match &a.validation {
+        None => None,
+        Some(path) => {
+            let probe = Thresholds {
+                alarm: 1.0,
+                clear: 0.0,
+            };
+            let (_, model) = build_blob(&fitted, probe, policy, meta)?;
+            let (d2, labels) = score_file(
+                model.as_ref(),
+                &fitted.features,
+                path,
+                Some(&a.label_column),
+                a.csv.quiet,
+            )?;
+            anyhow::ensure!(
+                labels.iter().any(|l| *l),
+                "{}: no reading is labelled as an anomaly in column `{}`, so F1 is undefined",
+                path.display(),
+                a.label_column
+            );
+            let scores: Vec<f64> = d2
+                .iter()
+                .map(|d| d.map_or(f64::INFINITY, f64::from))
+                .collect();
+            metrics::f1_optimal_threshold(&scores, &labels)
+        }
+    };
+    let candidates = Candidates {
+        alpha,
+        chi_square: threshold::chi_square(n, alpha),
+        empirical: threshold::empirical(&fitted.holdout_d2, alpha),
+        f1,
+    };
+    let alarm = candidates.pick(a.threshold)?;
+    anyhow::ensure!(
+        alarm.is_finite() && alarm > 0.0 && alarm < f64::from(f32::MAX),
+        "the {:?} threshold came out as {alarm}, which cannot be used",
+        a.threshold
+    );
+    let thresholds = Thresholds {
+        alarm: alarm as f32,
+        clear: (alarm * a.clear_fraction) as f32,
+    };
+    let (blob_bytes, model) = build_blob(&fitted, thresholds, policy, meta)?;
+    let holdout = (!fitted.holdout_d2.is_empty())
+        .then(|| check_holdout(&fitted.holdout_d2, thresholds, policy, a.rate_hz));
+    let log_features = fitted
+        .features
+        .iter()
+        .enumerate()
+        .filter(|(i, _)| (fitted.log_mask >> i) & 1 == 1)
+        .map(|(_, f)| f.clone())
+        .collect();
+    let card = ModelCard {
+        kind: "ellipsoid-model-card".into(),
+        version: 1,
+        features: fitted.features.clone(),
+        log_features,
+        blob_crc: blob_crc(&blob_bytes),
+        blob_len: blob_bytes.len(),
+        threshold_method: method_name(a.threshold).into(),
+        alpha,
+        rate_hz: a.rate_hz,
+        trained_on: a.baseline.display().to_string(),
+    };
+    Ok(Trained {
+        fitted,
+        candidates,
+        method: a.threshold,
+        thresholds,
+        policy,
+        blob: blob_bytes,
+        model,
+        card,
+        holdout,
+        rate_hz: a.rate_hz,
+        baseline: a.baseline.display().to_string(),
+    })
+}
+
+/// The name a method has on the command line and in the card.
+pub fn method_name(m: Method) -> &'static str {
+    match m {
+        Method::ChiSquare => "chi-square",
+        Method::Empirical => "empirical",
+        Method::F1 => "f1",
+    }
+}
+
+/// Write the blob and its card (each atomically).
+pub fn write_outputs(t: &Trained, out: &Path) -> Result<()> {
+    output::write_bytes(out, &t.blob)?;
+    t.card
+        .write(&ModelCard::path_for(out))
+        .context("while writing the model card")?;
+    Ok(())
+}
+
+/// A square matrix with numbered columns (the rows carry the names), so wide names stay readable.
+fn fmt_matrix(s: &mut String, names: &[String], m: &[f64], digits: usize) {
+    let n = names.len();
+    let name_w = names.iter().map(|x| x.len()).max().unwrap_or(4) + 5;
+    let w = digits + 4;
+    let _ = write!(s, "    {:name_w$}", "");
+    for j in 1..=n {
+        let _ = write!(s, " {:>w$}", format!("[{j}]"));
+    }
+    s.push('\n');
+    for (i, (name, row)) in names.iter().zip(m.chunks(n.max(1))).enumerate() {
+        let label = format!("[{}] {name}", i + 1);
+        let _ = write!(s, "    {label:name_w$}");
+        for v in row {
+            let _ = write!(s, " {v:>w$.digits$}");
+        }
+        s.push('\n');
+    }
+}
+
+/// A p-value for people: below what f64 can resolve next to 1, say so instead of printing 0.
+fn fmt_p(p: f64) -> String {
+    if p < 1e-16 {
+        "p < 1e-16".into()
+    } else {
+        format!("p = {p:.2e}")
+    }
+}
+
+/// The human-readable summary.
+pub fn summary_text(t: &Trained) -> String {
+    let f = &t.fitted;
+    let n = f.features.len();
+    let mut s = String::new();
+    let _ = writeln!(
+        s,
+        "Fitted {} features from {}: {} rows used, {} skipped, {} held out.",
+        n, t.baseline, f.rows_used, f.rows_skipped, f.rows_holdout
+    );
+    for r in &f.skipped_reasons {
+        let _ = writeln!(s, "  skipped: {r}");
+    }
+    for w in &f.warnings {
+        let _ = writeln!(s, "  warning: {w}");
+    }
+    if let Some((method, intensity)) = &f.shrinkage {
+        let _ = writeln!(s, "  covariance: {method}, intensity {intensity:.4}");
+    }
+    if let Some(r) = &f.robust {
+        let _ = writeln!(
+            s,
+            "  robust fit (FAST-MCD): {} rows set aside as outliers{}",
+            r.set_aside_lines.len(),
+            if r.set_aside_lines.is_empty() {
+                String::new()
+            } else {
+                let shown: Vec<String> = r
+                    .set_aside_lines
+                    .iter()
+                    .take(12)
+                    .map(|l| l.to_string())
+                    .collect();
+                format!(
+                    " (lines {}{})",
+                    shown.join(", "),
+                    if r.set_aside_lines.len() > 12 {
+                        ", …"
+                    } else {
+                        ""
+                    }
+                )
+            }
+        );
+    }
+    s.push('\n');
+    let w = f.features.iter().map(|x| x.len()).max().unwrap_or(8).max(8);
+    let _ = writeln!(
+        s,
+        "  {:<w$}  {:>5}  {:>14}  {:>12}  {:>9}  {:>9}",
+        "feature", "log", "mean", "sd", "skewness", "ex.kurt"
+    );
+    for i in 0..n {
+        let _ = writeln!(
+            s,
+            "  {:<w$}  {:>5}  {:>14.6}  {:>12.6}  {:>9.3}  {:>9.3}",
+            f.features[i],
+            if (f.log_mask >> i) & 1 == 1 {
+                "yes"
+            } else {
+                "no"
+            },
+            f.mean[i],
+            f.sd[i],
+            f.diagnostics.skewness.get(i).copied().unwrap_or(f64::NAN),
+            f.diagnostics
+                .excess_kurtosis
+                .get(i)
+                .copied()
+                .unwrap_or(f64::NAN),
+        );
+    }
+    let _ = writeln!(s, "\n  correlation matrix:");
+    fmt_matrix(&mut s, &f.features, &f.corr, 3);
+    let _ = writeln!(
+        s,
+        "  condition number of the correlation matrix: {:.1}",
+        f.condition_number
+    );
+    let d = &f.diagnostics;
+    let _ = writeln!(
+        s,
+        "  Mardia's tests: skewness statistic {:.1} over {} rows, {}; kurtosis z = {:.2} over {} rows, {}",
+        d.mardia_skewness.statistic,
+        d.mardia_skewness_rows,
+        fmt_p(d.mardia_skewness.p_value),
+        d.mardia_kurtosis.df_or_z,
+        d.rows,
+        fmt_p(d.mardia_kurtosis.p_value)
+    );
+    if d.mardia_skewness.p_value < 0.01 || d.mardia_kurtosis.p_value < 0.01 {
+        let _ = writeln!(
+            s,
+            "    the baseline is not multivariate normal, so the chi-square threshold's false-alarm \
+             rate is approximate: check it against the hold-out below"
+        );
+    }
+    for name in &d.log_suggestions {
+        let _ = writeln!(
+            s,
+            "  suggestion: `{name}` is positive and right-skewed; try --log {name}"
+        );
+    }
+    let _ = writeln!(
+        s,
+        "  worst relative difference, core f32 d² vs f64 d², over the baseline rows checked: {:.2e}",
+        f.f32_vs_f64_worst_rel
+    );
+    s.push('\n');
+    let c = &t.candidates;
+    let _ = writeln!(
+        s,
+        "Threshold on d² (target: α = {:.3e} per reading = {:.3} false readings a day at {} Hz):",
+        c.alpha,
+        c.alpha * SECONDS_PER_DAY * t.rate_hz,
+        t.rate_hz
+    );
+    let mark = |m: Method| if m == t.method { "  <- chosen" } else { "" };
+    let _ = writeln!(
+        s,
+        "  chi-square({n}) quantile at 1 − α:   {:>10.4}{}",
+        c.chi_square,
+        mark(Method::ChiSquare)
+    );
+    match &c.empirical {
+        Some(e) => {
+            let _ = writeln!(
+                s,
+                "  empirical hold-out quantile:     {:>10.4}  ({} of {} held-out readings above{}){}",
+                e.value,
+                e.above,
+                e.n,
+                if e.beyond_data {
+                    "; α·n < 1, so this is the largest value seen"
+                } else {
+                    ""
+                },
+                mark(Method::Empirical)
+            );
+        }
+        None => {
+            let _ = writeln!(s, "  empirical hold-out quantile:     (no hold-out)");
+        }
+    }
+    match &c.f1 {
+        Some((thr, f1)) => {
+            let _ = writeln!(
+                s,
+                "  F1-optimal on validation:        {:>10.4}  (F1 {:.3}){}",
+                thr,
+                f1,
+                mark(Method::F1)
+            );
+        }
+        None => {
+            let _ = writeln!(
+                s,
+                "  F1-optimal on validation:        (no --validation file)"
+            );
+        }
+    }
+    let chosen = f64::from(t.thresholds.alarm);
+    let _ = writeln!(
+        s,
+        "  alarm when d² > {:.4} for {} reading(s) in a row; clear below {:.4} for {}{}",
+        chosen,
+        t.policy.raise_after,
+        t.thresholds.clear,
+        t.policy.clear_after,
+        if t.policy.latch { "; latched" } else { "" }
+    );
+    let tail = threshold::chi_square_tail(n, chosen);
+    let _ = writeln!(
+        s,
+        "  expected under the Gaussian model: {:.3e} of readings above, {:.3} a day at {} Hz (before the raise-after debounce)",
+        tail,
+        tail * SECONDS_PER_DAY * t.rate_hz,
+        t.rate_hz
+    );
+    match &t.holdout {
+        Some(h) => {
+            let _ = writeln!(
+                s,
+                "  held-out baseline replayed through the alarm state machine: {} readings ({:.1} h), {} above ({:.3e}), {} alarms raised = {:.2} false alarms a day (95 % upper bound {:.1})",
+                h.readings, h.hours, h.readings_above, h.fraction_above, h.alarms_raised, h.false_alarms_per_day, h.false_alarms_per_day_upper95
+            );
+        }
+        None => {
+            let _ = writeln!(
+                s,
+                "  no hold-out: the policy's real false-alarm rate is not measured (give --holdout)"
+            );
+        }
+    }
+    let _ = writeln!(
+        s,
+        "\nBlob: {} bytes (model id {:#010x}, sequence {}); decoded on the device it takes {} bytes of RAM.",
+        t.blob.len(),
+        t.model.params().meta.model_id,
+        t.model.params().meta.sequence,
+        t.model.ram_bytes()
+    );
+    s
+}
+
+/// The JSON summary.
+pub fn summary_json(t: &Trained) -> serde_json::Value {
+    let f = &t.fitted;
+    serde_json::json!({
+        "baseline": t.baseline,
+        "features": f.features,
+        "log_features": t.card.log_features,
+        "rows_used": f.rows_used,
+        "rows_skipped": f.rows_skipped,
+        "skipped_reasons": f.skipped_reasons,
+        "rows_holdout": f.rows_holdout,
+        "mean": f.mean,
+        "sd": f.sd,
+        "covariance": f.cov,
+        "correlation": f.corr,
+        "condition_number": f.condition_number,
+        "shrinkage": f.shrinkage,
+        "robust_set_aside_lines": f.robust.as_ref().map(|r| r.set_aside_lines.clone()),
+        "diagnostics": f.diagnostics,
+        "f32_vs_f64_worst_relative_difference": f.f32_vs_f64_worst_rel,
+        "warnings": f.warnings,
+        "threshold": {
+            "method": method_name(t.method),
+            "alarm": t.thresholds.alarm,
+            "clear": t.thresholds.clear,
+            "candidates": t.candidates,
+            "expected_fraction_above": threshold::chi_square_tail(f.features.len(), f64::from(t.thresholds.alarm)),
+        },
+        "policy": {
+            "raise_after": t.policy.raise_after,
+            "clear_after": t.policy.clear_after,
+            "latch": t.policy.latch,
+        },
+        "rate_hz": t.rate_hz,
+        "holdout_check": t.holdout,
+        "blob_bytes": t.blob.len(),
+        "model_id": t.model.params().meta.model_id,
+        "sequence": t.model.params().meta.sequence,
+        "decoded_model_ram_bytes": t.model.ram_bytes(),
+    })
+}
+
+/// The fit's HTML report.
+pub fn report_data(t: &Trained) -> report::ReportData {
+    let f = &t.fitted;
+    let c = &t.candidates;
+    let mut others = vec![("chi-square".to_string(), c.chi_square)];
+    if let Some(e) = &c.empirical {
+        others.push(("empirical".to_string(), e.value));
+    }
+    if let Some((thr, _)) = &c.f1 {
+        others.push(("F1-optimal".to_string(), *thr));
+    }
+    let mut machine = AlarmMachine::new(t.thresholds, t.policy);
+    let alarm: Vec<bool> = f
+        .holdout_d2
+        .iter()
+        .map(|v| {
+            machine
+                .update(&Ok(Scored {
+                    d2: *v,
+                    verdict: if *v > t.thresholds.alarm {
+                        Verdict::Above
+                    } else {
+                        Verdict::Below
+                    },
+                }))
+                .alarm
+        })
+        .collect();
+    report::ReportData {
+        title: format!("Ellipsoid model of {}", t.baseline),
+        subtitle: format!(
+            "{} features, {} rows used, threshold by {}",
+            f.features.len(),
+            f.rows_used,
+            method_name(t.method)
+        ),
+        features: f.features.clone(),
+        summary: vec![
+            ("rows used".into(), f.rows_used.to_string()),
+            ("rows skipped".into(), f.rows_skipped.to_string()),
+            ("rows held out".into(), f.rows_holdout.to_string()),
+            (
+                "condition number".into(),
+                format!("{:.1}", f.condition_number),
+            ),
+            (
+                "alarm threshold (d²)".into(),
+                format!("{:.4}", t.thresholds.alarm),
+            ),
+            (
+                "clear threshold (d²)".into(),
+                format!("{:.4}", t.thresholds.clear),
+            ),
+            (
+                "policy".into(),
+                format!(
+                    "raise after {}, clear after {}{}",
+                    t.policy.raise_after,
+                    t.policy.clear_after,
+                    if t.policy.latch { ", latched" } else { "" }
+                ),
+            ),
+            (
+                "held-out false alarms a day".into(),
+                t.holdout.as_ref().map_or("(no hold-out)".into(), |h| {
+                    format!("{:.2}", h.false_alarms_per_day)
+                }),
+            ),
+            ("blob".into(), format!("{} bytes", t.blob.len())),
+        ],
+        d2: f.holdout_d2.iter().map(|v| Some(*v)).collect(),
+        rate_hz: t.rate_hz,
+        alarm_threshold: f64::from(t.thresholds.alarm),
+        clear_threshold: f64::from(t.thresholds.clear),
+        other_thresholds: others,
+        alarm,
+        baseline_d2: f.holdout_d2.iter().map(|v| f64::from(*v)).collect(),
+        qq: f.diagnostics.qq.clone(),
+        corr: f.corr.clone(),
+        ..Default::default()
+    }
+}
+
+/// Run `fit`.
+pub fn run(a: &FitArgs) -> Result<()> {
+    let t = train(a)?;
+    write_outputs(&t, &a.out)?;
+    if let Some(path) = &a.report {
+        let html = report::render(&report_data(&t))?;
+        output::write_bytes(path, html.as_bytes())?;
+    }
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&summary_json(&t))?);
+    } else {
+        print!("{}", summary_text(&t));
+        println!(
+            "Wrote {} and {}{}.",
+            a.out.display(),
+            ModelCard::path_for(&a.out).display(),
+            a.report
+                .as_ref()
+                .map_or(String::new(), |r| format!(" and {}", r.display()))
+        );
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Exact Poisson upper limits (Garwood 1936), as tabulated e.g. in the NIST/SEMATECH
+    /// e-Handbook's confidence limits for a Poisson count: k = 0 → 2.996, k = 1 → 4.744,
+    /// k = 5 → 10.513 (one-sided 95 %; values from memory, and they equal χ²₀.₉₅(2k+2)/2,
+    /// which is what is computed).
+    #[test]
+    fn poisson_upper_bounds() {
+        for (k, want) in [(0u64, 2.996), (1, 4.744), (5, 10.513)] {
+            assert!(
+                (poisson_upper95(k) - want).abs() < 1e-3,
+                "k {k}: {}",
+                poisson_upper95(k)
+            );
+        }
+    }
+
+    #[test]
+    fn holdout_check_counts_policy_alarms() {
+        let thresholds = Thresholds {
+            alarm: 10.0,
+            clear: 5.0,
+        };
+        let policy = AlarmPolicy {
+            raise_after: 2,
+            clear_after: 1,
+            latch: false,
+        };
+        // 86 400 readings at 1 Hz = one day; two runs of two readings above raise twice,
+        // and one lone reading above does not raise.
+        let mut d2 = vec![1.0f32; 86_400];
+        d2[100] = 11.0;
+        d2[101] = 11.0;
+        d2[500] = 11.0;
+        d2[900] = 12.0;
+        d2[901] = 12.0;
+        let h = check_holdout(&d2, thresholds, policy, 1.0);
+        assert_eq!(h.readings_above, 5);
+        assert_eq!(h.alarms_raised, 2);
+        assert!((h.false_alarms_per_day - 2.0).abs() < 1e-12);
+        assert!((h.hours - 24.0).abs() < 1e-12);
+        assert!(h.false_alarms_per_day_upper95 > 6.29 && h.false_alarms_per_day_upper95 < 6.3);
+    }
+}

@@ -1,0 +1,434 @@
+//! End-to-end tests of the `ellipsoid` binary: every subcommand, and every bad-input case.
+
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+
+use assert_cmd::Command;
+use ellipsoid_core::{blob, Model};
+use predicates::prelude::*;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+
+fn ellipsoid() -> Command {
+    Command::cargo_bin("ellipsoid").unwrap()
+}
+
+/// A correlated 3-channel baseline (x, y ≈ 2x + noise, z independent), seeded; test data only.
+fn baseline_csv(rows: usize, seed: u64) -> String {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let mut s = String::from("timestamp,current_a,pressure_bar,temp_c\n");
+    for i in 0..rows {
+        let a: f64 = rng.random_range(-1.0..1.0) + rng.random_range(-1.0..1.0);
+        let b: f64 = rng.random_range(-1.0..1.0) + rng.random_range(-1.0..1.0);
+        let c: f64 = rng.random_range(-1.0..1.0) + rng.random_range(-1.0..1.0);
+        let _ = writeln!(
+            s,
+            "2026-01-01T00:{:02}:{:02}Z,{:.4},{:.4},{:.4}",
+            (i / 60) % 60,
+            i % 60,
+            10.0 + a,
+            3.0 + 0.5 * a + 0.1 * b,
+            40.0 + 2.0 * c
+        );
+    }
+    s
+}
+
+fn write(dir: &Path, name: &str, text: &str) -> PathBuf {
+    let p = dir.join(name);
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+fn fit_ok(dir: &Path) -> PathBuf {
+    let base = write(dir, "base.csv", &baseline_csv(2000, 1));
+    let out = dir.join("m.blob");
+    ellipsoid()
+        .args([
+            "fit",
+            base.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ])
+        .args(["--quiet", "--trained-at", "1767225600"])
+        .assert()
+        .success()
+        .stdout(predicate::str::contains("chi-square(3)"));
+    out
+}
+
+#[test]
+fn every_subcommand_has_help_with_an_example() {
+    for sub in ["fit", "inspect", "replay", "evaluate", "demo"] {
+        ellipsoid()
+            .args([sub, "--help"])
+            .assert()
+            .success()
+            .stdout(predicate::str::contains("Example"));
+    }
+}
+
+#[test]
+fn fit_writes_a_blob_and_card_that_inspect_validates() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = fit_ok(dir.path());
+    assert!(out.exists());
+    assert!(out.with_extension("json").exists());
+    ellipsoid()
+        .args(["inspect", out.to_str().unwrap()])
+        .assert()
+        .success()
+        .stdout(predicate::str::contains("a valid Ellipsoid model blob"))
+        .stdout(predicate::str::contains("pressure_bar"));
+    let json = ellipsoid()
+        .args(["inspect", out.to_str().unwrap(), "--json"])
+        .assert()
+        .success()
+        .get_output()
+        .stdout
+        .clone();
+    let v: serde_json::Value = serde_json::from_slice(&json).unwrap();
+    assert_eq!(v["dimension"], 3);
+    assert_eq!(v["blob_bytes"], std::fs::metadata(&out).unwrap().len());
+    // The covariance rebuilt from W matches the data: var(current) ≈ 2·(1/3) = 0.667.
+    let var0 = v["covariance"][0][0].as_f64().unwrap();
+    assert!((var0 - 0.667).abs() < 0.06, "{var0}");
+}
+
+#[test]
+fn fit_json_matches_the_nist_worked_example() {
+    // NIST/SEMATECH e-Handbook, section 6.5.4.1 (shared/reference-values.md).
+    let dir = tempfile::tempdir().unwrap();
+    let base = write(
+        dir.path(),
+        "nist.csv",
+        "len,wid,ht\n4.0,2.0,0.60\n4.2,2.1,0.59\n3.9,2.0,0.58\n4.3,2.1,0.62\n4.1,2.2,0.63\n",
+    );
+    let out = dir.path().join("nist.blob");
+    let json = ellipsoid()
+        .args([
+            "fit",
+            base.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ])
+        .args(["--holdout", "0", "--json", "--quiet"])
+        .assert()
+        .success()
+        .get_output()
+        .stdout
+        .clone();
+    let v: serde_json::Value = serde_json::from_slice(&json).unwrap();
+    let mean: Vec<f64> = serde_json::from_value(v["mean"].clone()).unwrap();
+    for (got, want) in mean.iter().zip([4.10, 2.08, 0.604]) {
+        assert!((got - want).abs() < 1e-12, "{got} vs {want}");
+    }
+    let cov: Vec<f64> = serde_json::from_value(v["covariance"].clone()).unwrap();
+    let want = [
+        0.025, 0.0075, 0.00175, 0.0075, 0.007, 0.00135, 0.00175, 0.00135, 0.00043,
+    ];
+    for (got, want) in cov.iter().zip(want) {
+        assert!((got - want).abs() < 1e-12, "{got} vs {want}");
+    }
+    // Five rows for three features is allowed (≥ N+1) but warned about (< 10·N).
+    assert!(v["warnings"].to_string().contains("10"));
+}
+
+#[test]
+fn replay_is_bit_identical_to_the_core_and_matches_columns_by_name() {
+    let dir = tempfile::tempdir().unwrap();
+    let model_path = fit_ok(dir.path());
+    // Columns in another order, a NaN dropout, and a reading far off the pattern.
+    let readings = write(
+        dir.path(),
+        "r.csv",
+        "temp_c,pressure_bar,current_a\n40,3,10\n41,3.2,10.5\n,3,10\n40,1.0,13\n40,1.0,13\n40,1.0,13\n40,3,10\n",
+    );
+    let out = dir.path().join("r-scored.csv");
+    ellipsoid()
+        .args(["replay", "--model", model_path.to_str().unwrap()])
+        .args(["--input", readings.to_str().unwrap()])
+        .args(["--out", out.to_str().unwrap(), "--quiet"])
+        .assert()
+        .success();
+    let text = std::fs::read_to_string(&out).unwrap();
+    let bytes = std::fs::read(&model_path).unwrap();
+    let model = Model::<3>::from_blob(&bytes).unwrap();
+    let rows = [
+        [10.0f32, 3.0, 40.0],
+        [10.5, 3.2, 41.0],
+        [10.0, 3.0, f32::NAN],
+        [13.0, 1.0, 40.0],
+        [13.0, 1.0, 40.0],
+        [13.0, 1.0, 40.0],
+        [10.0, 3.0, 40.0],
+    ];
+    let mut lines = text.lines();
+    assert_eq!(
+        lines.next().unwrap(),
+        "index,d2,d2_bits,verdict,alarm,fault,event,top_feature,c_current_a,c_pressure_bar,c_temp_c"
+    );
+    for (i, (line, x)) in lines.zip(rows).enumerate() {
+        let cells: Vec<&str> = line.split(',').collect();
+        assert_eq!(cells[0], i.to_string());
+        match model.score(&x) {
+            Ok(s) => {
+                assert_eq!(cells[2], format!("{:08x}", s.d2.to_bits()), "row {i}");
+                assert_eq!(cells[1].parse::<f32>().unwrap().to_bits(), s.d2.to_bits());
+            }
+            Err(_) => {
+                assert_eq!(cells[3], "fault");
+                assert_eq!(cells[5], "1");
+            }
+        }
+    }
+    // Three readings in a row far off the pattern raise the alarm (k = 3 by default).
+    assert!(text.lines().nth(6).unwrap().contains(",above,1,0,raised,"));
+}
+
+#[test]
+fn replay_refuses_a_csv_that_does_not_fit() {
+    let dir = tempfile::tempdir().unwrap();
+    let model_path = fit_ok(dir.path());
+    let readings = write(dir.path(), "r.csv", "current_a,temp_c\n10,40\n");
+    let out = dir.path().join("o.csv");
+    ellipsoid()
+        .args(["replay", "--model", model_path.to_str().unwrap()])
+        .args(["--input", readings.to_str().unwrap()])
+        .args(["--out", out.to_str().unwrap()])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("pressure_bar"));
+    assert!(!out.exists(), "a failed replay must write nothing");
+}
+
+#[test]
+fn evaluate_reports_metrics_and_json() {
+    let dir = tempfile::tempdir().unwrap();
+    let model_path = fit_ok(dir.path());
+    let mut csv = String::from("current_a,pressure_bar,temp_c,label\n");
+    for i in 0..200 {
+        if (100..120).contains(&i) {
+            csv.push_str("13,1.0,40,1\n");
+        } else {
+            let _ = writeln!(csv, "{},{},40,0", 10.0 + (i % 7) as f64 * 0.05, 3.0);
+        }
+    }
+    let labelled = write(dir.path(), "l.csv", &csv);
+    ellipsoid()
+        .args(["evaluate", "--model", model_path.to_str().unwrap()])
+        .args(["--input", labelled.to_str().unwrap(), "--quiet"])
+        .assert()
+        .success()
+        .stdout(predicate::str::contains("recall"));
+    let json = ellipsoid()
+        .args(["evaluate", "--model", model_path.to_str().unwrap()])
+        .args(["--input", labelled.to_str().unwrap(), "--json", "--quiet"])
+        .assert()
+        .success()
+        .get_output()
+        .stdout
+        .clone();
+    let v: serde_json::Value = serde_json::from_slice(&json).unwrap();
+    assert_eq!(v["readings"], 200);
+    assert_eq!(v["anomalous_readings"], 20);
+}
+
+#[test]
+fn inspect_refuses_a_corrupt_blob() {
+    let dir = tempfile::tempdir().unwrap();
+    let model_path = fit_ok(dir.path());
+    let mut bytes = std::fs::read(&model_path).unwrap();
+    bytes[20] ^= 0x04;
+    let bad = write(dir.path(), "bad.blob", "");
+    std::fs::write(&bad, &bytes).unwrap();
+    ellipsoid()
+        .args(["inspect", bad.to_str().unwrap()])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("CRC"));
+    // And the core agrees.
+    assert!(blob::decode::<3>(&bytes).is_err());
+}
+
+/// Each bad input: the error names the file, the line and the column (and the value).
+#[test]
+fn bad_inputs_are_refused_with_file_line_and_column() {
+    let dir = tempfile::tempdir().unwrap();
+    let good = baseline_csv(50, 2);
+    let mut lines: Vec<String> = good.lines().map(str::to_string).collect();
+    let cases: Vec<(&str, String, Vec<&str>)> = vec![
+        (
+            "not-a-number",
+            {
+                let mut l = lines.clone();
+                l[7] = "2026-01-01T00:00:07Z,10.1,abc,40".into();
+                l.join("\n")
+            },
+            vec![":8", "pressure_bar", "abc"],
+        ),
+        (
+            "field-count",
+            {
+                let mut l = lines.clone();
+                l[5] = "2026-01-01T00:00:05Z,10.1,3.0".into();
+                l.join("\n")
+            },
+            vec![":6"],
+        ),
+        (
+            "nan-cell",
+            {
+                let mut l = lines.clone();
+                l[9] = "2026-01-01T00:00:09Z,NaN,3.0,40".into();
+                l.join("\n")
+            },
+            vec![":10", "current_a"],
+        ),
+        ("empty", String::new(), vec!["empty"]),
+        (
+            "duplicate",
+            {
+                let mut l = lines.clone();
+                l[0] = "timestamp,current_a,current_a,temp_c".into();
+                l.join("\n")
+            },
+            vec!["current_a"],
+        ),
+    ];
+    for (name, text, needles) in cases {
+        let path = write(dir.path(), &format!("{name}.csv"), &text);
+        let out = dir.path().join(format!("{name}.blob"));
+        let assert = ellipsoid()
+            .args([
+                "fit",
+                path.to_str().unwrap(),
+                "--out",
+                out.to_str().unwrap(),
+                "--quiet",
+            ])
+            .assert()
+            .failure();
+        let stderr = String::from_utf8_lossy(&assert.get_output().stderr).to_string();
+        assert!(stderr.contains(&format!("{name}.csv")), "{name}: {stderr}");
+        for n in needles {
+            assert!(stderr.contains(n), "{name}: `{n}` not in {stderr}");
+        }
+        assert!(!out.exists(), "{name}: a failed fit must write nothing");
+    }
+    // A missing column asked for by --columns.
+    let path = write(dir.path(), "ok.csv", &good);
+    ellipsoid()
+        .args([
+            "fit",
+            path.to_str().unwrap(),
+            "--out",
+            "/dev/null/x.blob",
+            "--quiet",
+        ])
+        .args(["--columns", "current_a,flow_lpm"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("flow_lpm"));
+    // --skip-bad-rows gets past bad rows and says how many.
+    lines[7] = "2026-01-01T00:00:07Z,10.1,abc,40".into();
+    lines[9] = "2026-01-01T00:00:09Z,NaN,3.0,40".into();
+    let path = write(dir.path(), "skip.csv", &lines.join("\n"));
+    let out = dir.path().join("skip.blob");
+    ellipsoid()
+        .args([
+            "fit",
+            path.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ])
+        .args(["--skip-bad-rows", "--quiet", "--holdout", "0"])
+        .assert()
+        .success()
+        .stdout(predicate::str::contains("2 skipped"));
+    // Fewer than N + 1 usable rows.
+    let path = write(dir.path(), "few.csv", "a,b,c\n1,2,3\n2,3,1\n3,1,2\n");
+    ellipsoid()
+        .args([
+            "fit",
+            path.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ])
+        .args(["--quiet", "--holdout", "0"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("only 3 usable training row(s)"));
+}
+
+#[test]
+fn constant_and_collinear_features_are_named() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut s = String::from("a,b,c\n");
+    let mut rng = ChaCha8Rng::seed_from_u64(3);
+    for _ in 0..100 {
+        let a: f64 = rng.random_range(0.0..1.0);
+        let _ = writeln!(s, "{a},{},{}", rng.random_range(0.0..1.0), 5.0);
+    }
+    let path = write(dir.path(), "const.csv", &s);
+    let out = dir.path().join("o.blob");
+    ellipsoid()
+        .args([
+            "fit",
+            path.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+            "--quiet",
+        ])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("`c`").or(predicate::str::contains(" c ")));
+    let mut s = String::from("a,b,c\n");
+    for _ in 0..100 {
+        let a: f64 = rng.random_range(0.0..1.0);
+        let b: f64 = rng.random_range(0.0..1.0);
+        let _ = writeln!(s, "{a},{b},{}", 2.0 * a - b);
+    }
+    let path = write(dir.path(), "coll.csv", &s);
+    ellipsoid()
+        .args([
+            "fit",
+            path.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+            "--quiet",
+        ])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("linear combination of `a`, `b`"));
+    assert!(!out.exists());
+}
+
+#[test]
+fn demo_runs_end_to_end() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("demo");
+    ellipsoid()
+        .args(["demo", "--out", out.to_str().unwrap()])
+        .assert()
+        .success()
+        .stdout(predicate::str::contains("clogging").or(predicate::str::contains("filter")))
+        .stdout(predicate::str::contains("not a safety function"));
+    for f in [
+        "baseline.csv",
+        "readings.csv",
+        "model.blob",
+        "model.json",
+        "replay.csv",
+        "report.html",
+        "summary.txt",
+    ] {
+        assert!(out.join(f).exists(), "{f} missing");
+    }
+    let html = std::fs::read_to_string(out.join("report.html")).unwrap();
+    assert!(html.starts_with("<!DOCTYPE html>"));
+    assert!(html.matches("<svg").count() >= 5);
+    // The demo blob decodes in the core as a 5-feature model.
+    let bytes = std::fs::read(out.join("model.blob")).unwrap();
+    assert!(Model::<5>::from_blob(&bytes).is_ok());
+}
