@@ -43,7 +43,7 @@ use crate::{diagnostics, mcd, shrink};
 pub const SAMPLE_ROWS: usize = 20_000;
 
 /// Rows a reader thread gathers before folding them into its moments ([`Moments::push_block`]).
-const BLOCK_ROWS: usize = 256;
+const BLOCK_ROWS: usize = 128;
 
 /// Seed of the row sample's hash.
 pub const SAMPLE_SEED: u64 = 0x5eed_e11f_501d_0001;
@@ -87,7 +87,8 @@ pub struct FitOptions {
     /// Fit with FAST-MCD, setting outlying training rows aside (needs the rows in memory).
     pub robust: bool,
     /// Share of the data lines, `0 ≤ holdout < 1`, taken from the END of the file (time order)
-    /// and not fitted, but scored afterwards.
+    /// and not fitted, but scored afterwards. Lines are counted with `memchr` before parsing, so
+    /// blank lines count too; above zero at least one line is held out.
     pub holdout: f64,
     /// Reader threads; 0 takes the machine's parallelism (1 for files under 1 MB).
     pub threads: usize,
@@ -319,7 +320,7 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
     };
     let bounds = ingest::split_ranges(path, layout.data_start, train_end, threads).map_err(io)?;
     let keep_rows = opts.robust || opts.shrinkage == Shrinkage::LedoitWolf;
-    let progress = ingest::progress_bar(layout.file_len, opts.csv.quiet);
+    let progress = ingest::progress_bar(train_end - layout.data_start, opts.csv.quiet);
 
     let first_error = AtomicUsize::new(usize::MAX);
     let outs: Vec<WorkerOut> = std::thread::scope(|s| {

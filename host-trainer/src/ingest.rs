@@ -556,6 +556,7 @@ pub struct Reader {
     cells: Vec<(usize, usize)>,
     values: Vec<f64>,
     label: Option<bool>,
+    /// A timestamp cell that was not valid UTF-8, made readable.
     timestamp: String,
     /// Lines read so far by this reader.
     lines: u64,
@@ -706,13 +707,32 @@ impl Reader {
             let result = self.split(len, line).and_then(|()| self.decode(line));
             match result {
                 Ok(()) => {
+                    // The timestamp is borrowed from the line, copied only if it is not UTF-8.
+                    let timestamp = match self.layout.timestamp_field {
+                        None => None,
+                        Some(i) => {
+                            let (a, b) = self.cells[i];
+                            let raw = trim(if self.quoted {
+                                &self.unquoted[a..b]
+                            } else {
+                                &self.buf[a..b]
+                            });
+                            match std::str::from_utf8(raw) {
+                                Ok(text) => Some(text),
+                                Err(_) => {
+                                    self.timestamp = String::from_utf8_lossy(raw).into_owned();
+                                    Some(self.timestamp.as_str())
+                                }
+                            }
+                        }
+                    };
                     return Ok(Some(Row {
                         line,
                         byte,
                         values: &self.values,
                         label: self.label,
-                        timestamp: self.layout.timestamp_field.map(|_| self.timestamp.as_str()),
-                    }))
+                        timestamp,
+                    }));
                 }
                 Err(e) => self.skip_or_fail(e)?,
             }
@@ -822,16 +842,6 @@ impl Reader {
                 }
             },
         };
-        if let Some(i) = lay.timestamp_field {
-            let (a, b) = self.cells[i];
-            let raw = if self.quoted {
-                &self.unquoted[a..b]
-            } else {
-                &self.buf[a..b]
-            };
-            self.timestamp.clear();
-            self.timestamp.push_str(&String::from_utf8_lossy(trim(raw)));
-        }
         Ok(())
     }
 

@@ -30,7 +30,7 @@ pub struct Moments {
     delta: Vec<f64>,
     /// Scratch for `y − ȳ_new` (and a block's mean).
     resid: Vec<f64>,
-    /// Scratch for a block of rows, column-major.
+    /// Scratch for a block of centred rows, row-major.
     block: Vec<f64>,
     /// Scratch for a block's co-moment.
     gram: Vec<f64>,
@@ -132,27 +132,23 @@ impl Moments {
         if self.n == 0 {
             self.shift.copy_from_slice(&rows[..p]);
         }
-        // Column-major copy of the shifted rows, and the block mean.
+        // Shifted copy of the rows (row-major, like the input), and the block mean.
         self.block.clear();
-        self.block.resize(m * p, 0.0);
+        self.block.extend_from_slice(rows);
         let bmean = &mut self.resid;
         bmean.iter_mut().for_each(|v| *v = 0.0);
-        for (r, row) in rows.chunks_exact(p).enumerate() {
-            for (j, ((x, k), bm)) in row
-                .iter()
-                .zip(&self.shift)
-                .zip(bmean.iter_mut())
-                .enumerate()
-            {
-                let y = x - k;
-                self.block[j * m + r] = y;
-                *bm += y;
+        for row in self.block.chunks_exact_mut(p) {
+            for ((y, k), bm) in row.iter_mut().zip(&self.shift).zip(bmean.iter_mut()) {
+                *y -= k;
+                *bm += *y;
             }
         }
         let inv_m = 1.0 / m as f64;
         bmean.iter_mut().for_each(|v| *v *= inv_m);
-        for (col, bm) in self.block.chunks_exact_mut(m).zip(bmean.iter()) {
-            col.iter_mut().for_each(|v| *v -= bm);
+        for row in self.block.chunks_exact_mut(p) {
+            for (y, bm) in row.iter_mut().zip(bmean.iter()) {
+                *y -= bm;
+            }
         }
         // Chan merge of (m, bmean, block co-moment) into self, in the same shift frame.
         let (na, nb) = (self.n as f64, m as f64);
@@ -161,31 +157,29 @@ impl Moments {
         for ((d, a), b) in self.delta.iter_mut().zip(&self.mean).zip(bmean.iter()) {
             *d = b - a;
         }
-        // The block's co-moment ZᵀZ as one matrix product (nalgebra hands it to matrixmultiply,
-        // which picks the CPU's vector instructions at run time).
-        // Small products (where nalgebra would not call matrixmultiply) are plain dot products.
+        // The block's co-moment ZᵀZ as one matrix product: nalgebra hands it to matrixmultiply,
+        // which picks the CPU's vector instructions at run time. The row-major block is Zᵀ
+        // read column-major, and Z read with a row stride of `p`. Products too small for
+        // matrixmultiply are summed row by row.
         self.gram.clear();
         self.gram.resize(p * p, 0.0);
         if p > GEMM_MIN && m > GEMM_MIN {
-            let z = DMatrixView::from_slice(&self.block, m, p);
-            let zt = DMatrixView::from_slice_with_strides(&self.block, p, m, m, 1);
+            let zt = DMatrixView::from_slice(&self.block, p, m);
+            let z = DMatrixView::from_slice_with_strides(&self.block, m, p, p, 1);
             let mut g = DMatrixViewMut::from_slice(&mut self.gram, p, p);
             g.gemm(1.0, &zt, &z, 0.0);
         } else {
-            for i in 0..p {
-                for j in 0..=i {
-                    let d = dot(
-                        &self.block[i * m..(i + 1) * m],
-                        &self.block[j * m..(j + 1) * m],
-                    );
-                    self.gram[i * p + j] = d;
-                    self.gram[j * p + i] = d;
+            for row in self.block.chunks_exact(p) {
+                for (i, yi) in row.iter().enumerate() {
+                    for (g, yj) in self.gram[i * p..i * p + i + 1].iter_mut().zip(row) {
+                        *g += yi * yj;
+                    }
                 }
             }
         }
         for i in 0..p {
             for j in 0..=i {
-                // `gram` is column-major; it is symmetric, so (j, i) is (i, j).
+                // `gram` is symmetric (or, summed by rows, filled in its lower triangle).
                 self.comoment[i * p + j] +=
                     self.gram[i * p + j] + self.delta[i] * self.delta[j] * w;
             }
@@ -280,25 +274,6 @@ impl Moments {
 
 /// Below this many features or rows a block's co-moment is not worth a matrix-product call.
 const GEMM_MIN: usize = 5;
-
-/// `Σ aᵢ bᵢ` with four running sums, so the compiler can keep them in vector registers.
-#[inline]
-fn dot(a: &[f64], b: &[f64]) -> f64 {
-    let mut acc = [0.0f64; 4];
-    let (ca, cb) = (a.chunks_exact(4), b.chunks_exact(4));
-    let tail: f64 = ca
-        .remainder()
-        .iter()
-        .zip(cb.remainder())
-        .map(|(x, y)| x * y)
-        .sum();
-    for (x, y) in ca.zip(cb) {
-        for k in 0..4 {
-            acc[k] += x[k] * y[k];
-        }
-    }
-    (acc[0] + acc[1]) + (acc[2] + acc[3]) + tail
-}
 
 /// The correlation matrix of a `p × p` covariance `cov`: `cov_ij / (sd_i sd_j)`, unit diagonal.
 pub fn correlation_of(cov: &[f64], p: usize) -> Vec<f64> {
