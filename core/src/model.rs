@@ -206,32 +206,38 @@ impl<const N: usize> Model<N> {
         Ok(d)
     }
 
-    /// `d² = ‖V d‖²`, without keeping `z`. Same operations, in the same order, as [`Self::project`].
+    /// `zᵢ = Σⱼ≤ᵢ Vᵢⱼ dⱼ`, summed from `j = 0` up, starting from the first product (not from
+    /// `0.0`, which would cost an instruction a row and only changes the sign of a zero `zᵢ`).
+    /// The one definition of a row, shared by [`Self::distance`] and [`Self::project`].
     #[inline(always)]
-    fn distance(&self, d: &[f32; N]) -> f32 {
-        let mut acc = 0.0f32;
-        for (i, row) in self.v.iter().enumerate() {
-            let mut z = 0.0f32;
-            for (vij, dj) in row.iter().zip(d).take(i + 1) {
-                z += vij * dj;
-            }
-            acc += z * z;
-        }
-        acc
+    fn row_dot(row: &[f32; N], d: &[f32; N], i: usize) -> f32 {
+        let mut terms = row.iter().zip(d).take(i + 1).map(|(vij, dj)| vij * dj);
+        let first = terms.next().unwrap_or(0.0);
+        terms.fold(first, |z, t| z + t)
     }
 
-    /// `z = V d` and `d² = ‖z‖²`.
+    /// `d² = ‖V d‖²`, without keeping `z`: `z₀² + z₁² + …`, summed in row order. Same operations,
+    /// in the same order, as [`Self::project`], so the two agree to the bit.
+    #[inline(always)]
+    fn distance(&self, d: &[f32; N]) -> f32 {
+        let mut zs = self
+            .v
+            .iter()
+            .enumerate()
+            .map(|(i, row)| Self::row_dot(row, d, i));
+        let z0 = zs.next().unwrap_or(0.0);
+        zs.fold(z0 * z0, |acc, z| acc + z * z)
+    }
+
+    /// `z = V d` and `d² = ‖z‖²`, with the operations of [`Self::distance`].
     fn project(&self, d: &[f32; N]) -> ([f32; N], f32) {
         let mut zs = [0.0f32; N];
-        let mut acc = 0.0f32;
         for (i, (row, zi)) in self.v.iter().zip(zs.iter_mut()).enumerate() {
-            let mut z = 0.0f32;
-            for (vij, dj) in row.iter().zip(d).take(i + 1) {
-                z += vij * dj;
-            }
-            *zi = z;
-            acc += z * z;
+            *zi = Self::row_dot(row, d, i);
         }
+        let mut it = zs.iter();
+        let z0 = it.next().copied().unwrap_or(0.0);
+        let acc = it.fold(z0 * z0, |acc, z| acc + z * z);
         (zs, acc)
     }
 

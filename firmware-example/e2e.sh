@@ -1,0 +1,148 @@
+#!/usr/bin/env bash
+# The firmware's end-to-end check in the emulator, and the figures of firmware-example/README.md.
+#
+#  1. fit the demo model with the trainer and write its blob (and a second model, sequence 2);
+#  2. build the firmware in release mode (Cortex-M4F, and the Cortex-M0+ image for its size);
+#  3. run it in qemu-system-arm (mps2-an386) with the blob in slot A and the demo's readings loaded;
+#  4. check that the device's d² is bit-identical to `ellipsoid replay`, and its alarm timeline,
+#     pin changes and final LED levels identical;
+#  5. run it with slot A corrupted and a valid model in B (B must be used), with a torn A and a newer
+#     B, and with both slots corrupt (fault line on, nothing scored);
+#  6. look for panic machinery on the decode and score paths of the release image;
+#  7. measure the cost of a score for N = 4, 8, 16 and write the figures into the README.
+#
+# Any failed check ends the script with a non-zero status. Nearly all its time is building (the
+# release trainer, the host tool, three firmware images); the emulator runs take seconds.
+set -euo pipefail
+cd "$(dirname "$0")/.."
+
+say() { printf '== %s\n' "$*"; }
+fail() { printf 'e2e: FAILED: %s\n' "$*" >&2; exit 1; }
+
+say "tools"
+if ! command -v qemu-system-arm >/dev/null || ! command -v arm-none-eabi-objdump >/dev/null; then
+  sudo=""
+  if [ "$(id -u)" != 0 ] && command -v sudo >/dev/null; then sudo="sudo"; fi
+  $sudo apt-get update
+  $sudo apt-get install -y qemu-system-arm binutils-arm-none-eabi
+fi
+rustup target add thumbv7em-none-eabihf thumbv6m-none-eabi
+qemu-system-arm --version | head -n 1
+
+W=target/e2e
+rm -rf "$W"
+mkdir -p "$W"
+
+say "host tools"
+cargo build -q --release -p ellipsoid-tests --bin node-tool
+TOOL=target/release/node-tool
+
+say "1. the demo model"
+cargo build -q --release -p ellipsoid-trainer
+ELLIPSOID=target/release/ellipsoid
+$ELLIPSOID demo --out "$W/demo" --quiet
+[ -s "$W/demo/baseline.csv" ] || fail "the demo wrote no baseline.csv to fit a second model from"
+# A second model of the same machine, with a higher sequence number, for slot B.
+$ELLIPSOID fit "$W/demo/baseline.csv" --out "$W/model-b.blob" --sequence 2
+replay() { $ELLIPSOID replay --model "$1" --input "$2" --out "$3"; }
+BLOB_B="$W/model-b.blob"
+BLOB_A="$W/demo/model.blob"
+READINGS="$W/demo/readings.csv"
+[ -s "$BLOB_A" ] || fail "no $BLOB_A"
+[ -s "$READINGS" ] || fail "no $READINGS"
+$TOOL table --input "$READINGS" --model "$BLOB_A" --out "$W/readings.bin"
+$TOOL damage --input "$BLOB_A" --mode flip --out "$W/a-flipped.blob"
+$TOOL damage --input "$BLOB_A" --mode torn --out "$W/a-torn.blob"
+$TOOL damage --input "$BLOB_B" --mode torn --out "$W/b-torn.blob"
+replay "$BLOB_A" "$READINGS" "$W/replay-a.csv"
+replay "$BLOB_B" "$READINGS" "$W/replay-b.csv"
+
+say "2. the firmware, release"
+FW="cargo build -q --release -p ellipsoid-firmware-example --features mps2-an386"
+$FW --target thumbv7em-none-eabihf
+$FW --target thumbv6m-none-eabi --bin ellipsoid-node
+ELF=target/thumbv7em-none-eabihf/release/ellipsoid-node
+COST_ELF=target/thumbv7em-none-eabihf/release/score-cost
+ELF_M0=target/thumbv6m-none-eabi/release/ellipsoid-node
+arm-none-eabi-size "$ELF" "$ELF_M0"
+
+sym() { arm-none-eabi-nm "$ELF" | awk -v s="$1" '$3 == s { print "0x" $1 }'; }
+SLOT_A=$(sym _model_a_start)
+SLOT_B=$(sym _model_b_start)
+TABLE=$(sym _readings_start)
+[ -n "$SLOT_A" ] && [ -n "$SLOT_B" ] && [ -n "$TABLE" ] || fail "slot symbols missing from $ELF"
+echo "slot A at $SLOT_A, slot B at $SLOT_B, readings at $TABLE"
+
+# run NAME IMAGE [loader args...]: the device's output goes to $W/NAME.log; a non-zero exit fails.
+run() {
+  local name=$1 image=$2
+  shift 2
+  if ! timeout 120 qemu-system-arm -cpu cortex-m4 -machine mps2-an386 -nographic \
+      -semihosting-config enable=on,target=native -icount shift=0 -kernel "$image" "$@" \
+      >"$W/$name.log" 2>"$W/$name.err"; then
+    tail -n 20 "$W/$name.log" "$W/$name.err" >&2 || true
+    fail "the emulator run '$name' did not exit cleanly"
+  fi
+}
+load() { echo "-device loader,file=$1,addr=$2,force-raw=on"; }
+
+say "3-4. slot A, the demo's readings: device against replay"
+# shellcheck disable=SC2046
+run slot-a "$ELF" $(load "$BLOB_A" "$SLOT_A") $(load "$W/readings.bin" "$TABLE")
+$TOOL compare --device "$W/slot-a.log" --replay "$W/replay-a.csv" --readings "$READINGS" \
+  --slot A | sed 's/^/slot A valid, B empty: /' | tee "$W/compared.txt"
+
+say "4. the comparison can fail: one d² bit changed in the device's log must be refused"
+awk '!done && $1 == "r" && match($0, /d2=[0-9a-f]+/) {
+  hex = "0123456789abcdef"; i = index(hex, substr($0, RSTART + 10, 1)) - 1
+  j = (i % 2 == 0) ? i + 1 : i - 1
+  $0 = substr($0, 1, RSTART + 9) substr(hex, j + 1, 1) substr($0, RSTART + 11); done = 1
+} { print }' "$W/slot-a.log" >"$W/tampered.log"
+cmp -s "$W/slot-a.log" "$W/tampered.log" && fail "the tampered log is unchanged"
+if $TOOL compare --device "$W/tampered.log" --replay "$W/replay-a.csv" --readings "$READINGS" \
+    --slot A >"$W/tampered.out" 2>&1; then
+  fail "compare accepted a log with a changed d² bit"
+fi
+grep -q "d2 bits device" "$W/tampered.out" || fail "compare refused the tampered log for another reason"
+echo "refused, as it must be: $(grep -m1 MISMATCH "$W/tampered.out")"
+
+say "5. slot A corrupt, B valid: B must be used"
+# shellcheck disable=SC2046
+run a-flipped "$ELF" $(load "$W/a-flipped.blob" "$SLOT_A") $(load "$BLOB_B" "$SLOT_B") \
+  $(load "$W/readings.bin" "$TABLE")
+$TOOL compare --device "$W/a-flipped.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B --unusable A | sed 's/^/slot A with one bit flipped, B valid: /' | tee -a "$W/compared.txt"
+grep -q "slot A unusable: CRC mismatch" "$W/a-flipped.log" || fail "slot A's CRC failure not reported"
+
+say "5. slot A torn, B valid"
+# shellcheck disable=SC2046
+run a-torn "$ELF" $(load "$W/a-torn.blob" "$SLOT_A") $(load "$BLOB_B" "$SLOT_B") \
+  $(load "$W/readings.bin" "$TABLE")
+$TOOL compare --device "$W/a-torn.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B --unusable A | sed 's/^/slot A torn (second half erased), B valid: /' | tee -a "$W/compared.txt"
+
+say "5. both slots valid: the higher sequence (B) wins"
+# shellcheck disable=SC2046
+run both "$ELF" $(load "$BLOB_A" "$SLOT_A") $(load "$BLOB_B" "$SLOT_B") \
+  $(load "$W/readings.bin" "$TABLE")
+$TOOL compare --device "$W/both.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B | sed 's/^/A (sequence 1) and B (sequence 2) both valid: /' | tee -a "$W/compared.txt"
+
+say "5. both slots corrupt: fault line, no scoring"
+# shellcheck disable=SC2046
+run none "$ELF" $(load "$W/a-flipped.blob" "$SLOT_A") $(load "$W/b-torn.blob" "$SLOT_B") \
+  $(load "$W/readings.bin" "$TABLE")
+$TOOL no-model --device "$W/none.log" | sed 's/^/A bit-flipped, B torn: /' | tee -a "$W/compared.txt"
+
+say "6. panic machinery on the decode and score paths"
+$TOOL reach --elf "$ELF" --roots slots::load,node::score,node::explain | tee "$W/reach.txt"
+
+say "7. cost per score, and the figures"
+run cost "$COST_ELF"
+cat "$W/cost.log"
+$TOOL figures --elf "$ELF" --elf-m0 "$ELF_M0" --cost "$W/cost.log" --device "$W/slot-a.log" \
+  --compared "$W/compared.txt" --reach "$W/reach.txt" --readme firmware-example/README.md
+if grep -q '\*\*missed\*\*' firmware-example/README.md; then
+  fail "a cost target was missed (see firmware-example/README.md)"
+fi
+say "e2e passed"

@@ -1,0 +1,984 @@
+//! `node-tool`: the host side of the firmware's emulator end-to-end check.
+//!
+//! `firmware-example/e2e.sh` calls it to turn the demo's readings into the table the emulator
+//! loads, to damage blobs for the slot tests, to compare the device's report with
+//! `ellipsoid replay`, to look for panic machinery on the image's decode and score paths, and to
+//! write the figures into the firmware's README. Every check that fails ends with a non-zero status.
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::fmt::Write as _;
+use std::fs;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+use anyhow::{anyhow, bail, ensure, Context, Result};
+use clap::{Parser, Subcommand};
+use ellipsoid_firmware_example::source::table_header;
+
+#[derive(Parser)]
+#[command(about = "Host side of the Ellipsoid firmware's emulator end-to-end check")]
+struct Cli {
+    #[command(subcommand)]
+    command: Cmd,
+}
+
+#[derive(Subcommand)]
+enum Cmd {
+    /// Convert a readings CSV to the table the firmware reads (empty cell = NaN).
+    Table {
+        /// The readings CSV.
+        #[arg(long)]
+        input: PathBuf,
+        /// The model blob; its card names the feature columns, in model order.
+        #[arg(long)]
+        model: PathBuf,
+        /// The table to write.
+        #[arg(long)]
+        out: PathBuf,
+    },
+    /// Damage a blob the way a slot can be damaged.
+    Damage {
+        /// A valid blob.
+        #[arg(long)]
+        input: PathBuf,
+        /// `flip`: one bit in the body flipped; `torn`: the second half never written (0xFF).
+        #[arg(long)]
+        mode: String,
+        /// The damaged blob to write.
+        #[arg(long)]
+        out: PathBuf,
+    },
+    /// Compare the device's report with `ellipsoid replay` of the same readings.
+    Compare {
+        /// The device's semihosting output.
+        #[arg(long)]
+        device: PathBuf,
+        /// The CSV `ellipsoid replay` wrote.
+        #[arg(long)]
+        replay: PathBuf,
+        /// The readings CSV (for the feature names).
+        #[arg(long)]
+        readings: PathBuf,
+        /// Columns of the readings CSV that are not features.
+        #[arg(long, value_delimiter = ',', default_value = "timestamp,label")]
+        skip: Vec<String>,
+        /// The slot the device must have used.
+        #[arg(long, default_value = "A")]
+        slot: String,
+        /// A slot the device must have reported as unusable.
+        #[arg(long)]
+        unusable: Option<String>,
+    },
+    /// Check a run with no valid slot: fault on, alarm off, nothing scored.
+    NoModel {
+        /// The device's semihosting output.
+        #[arg(long)]
+        device: PathBuf,
+    },
+    /// Look for panic machinery on the paths from the given functions, in a release image.
+    Reach {
+        /// The image (ELF).
+        #[arg(long)]
+        elf: PathBuf,
+        /// Roots: functions whose demangled name ends with one of these.
+        #[arg(long, value_delimiter = ',')]
+        roots: Vec<String>,
+    },
+    /// Write the "Firmware figures" section of the README from measured data.
+    Figures {
+        /// The node image for the Cortex-M4F.
+        #[arg(long)]
+        elf: PathBuf,
+        /// The same image built for the Cortex-M0+.
+        #[arg(long)]
+        elf_m0: PathBuf,
+        /// Output of the `score-cost` image in the emulator.
+        #[arg(long)]
+        cost: PathBuf,
+        /// The device's output of the end-to-end run.
+        #[arg(long)]
+        device: PathBuf,
+        /// What `compare` printed.
+        #[arg(long)]
+        compared: PathBuf,
+        /// What `reach` printed.
+        #[arg(long)]
+        reach: PathBuf,
+        /// The README to update between its figure markers.
+        #[arg(long)]
+        readme: PathBuf,
+    },
+}
+
+fn main() -> Result<()> {
+    match Cli::parse().command {
+        Cmd::Table { input, model, out } => table(&input, &model, &out),
+        Cmd::Damage { input, mode, out } => damage(&input, &mode, &out),
+        Cmd::Compare {
+            device,
+            replay,
+            readings,
+            skip,
+            slot,
+            unusable,
+        } => compare(
+            &device,
+            &replay,
+            &readings,
+            &skip,
+            &slot,
+            unusable.as_deref(),
+        ),
+        Cmd::NoModel { device } => no_model(&device),
+        Cmd::Reach { elf, roots } => reach(&elf, &roots),
+        Cmd::Figures {
+            elf,
+            elf_m0,
+            cost,
+            device,
+            compared,
+            reach,
+            readme,
+        } => figures(&elf, &elf_m0, &cost, &device, &compared, &reach, &readme),
+    }
+}
+
+/// Write `bytes` to a temporary file beside `path`, then rename it into place.
+fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
+    let name = path
+        .file_name()
+        .ok_or_else(|| anyhow!("{}: not a file path", path.display()))?;
+    let tmp = path.with_file_name(format!(".{}.tmp", name.to_string_lossy()));
+    fs::write(&tmp, bytes).with_context(|| format!("writing {}", tmp.display()))?;
+    fs::rename(&tmp, path).with_context(|| format!("renaming into {}", path.display()))
+}
+
+fn read_text(path: &Path) -> Result<String> {
+    fs::read_to_string(path).with_context(|| format!("reading {}", path.display()))
+}
+
+/// The feature columns of a readings CSV: (names, column indices).
+fn feature_columns(path: &Path, skip: &[String]) -> Result<(Vec<String>, Vec<usize>)> {
+    let mut rdr =
+        csv::Reader::from_path(path).with_context(|| format!("opening {}", path.display()))?;
+    let headers = rdr
+        .headers()
+        .with_context(|| format!("{}: line 1: reading the header", path.display()))?;
+    let mut names = Vec::new();
+    let mut cols = Vec::new();
+    for (i, h) in headers.iter().enumerate() {
+        if !skip.iter().any(|s| s == h) {
+            names.push(h.to_string());
+            cols.push(i);
+        }
+    }
+    ensure!(
+        !names.is_empty(),
+        "{}: line 1: no feature columns",
+        path.display()
+    );
+    Ok((names, cols))
+}
+
+fn table(input: &Path, model: &Path, out: &Path) -> Result<()> {
+    // Read the CSV exactly as `ellipsoid replay` does: the trainer's reader, columns matched to the
+    // model card's feature names, and the trainer's one f64 → f32 conversion, so the device is fed
+    // the very bits the replay scored.
+    let blob = std::fs::read(model).with_context(|| format!("cannot read {}", model.display()))?;
+    let card = ellipsoid_trainer::card::ModelCard::read_for(model, &blob)?;
+    let names = card.features;
+    let opts = ellipsoid_trainer::ingest::CsvOptions {
+        columns: Some(names.clone()),
+        allow_missing: true,
+        quiet: true,
+        ..Default::default()
+    };
+    let mut reader = ellipsoid_trainer::ingest::Reader::open(input, &opts)?;
+    let mut body = Vec::new();
+    let mut count = 0u32;
+    while let Some(row) = reader.next_row()? {
+        for v in row.values {
+            body.extend_from_slice(&ellipsoid_trainer::replay::to_device(*v).to_le_bytes());
+        }
+        count += 1;
+    }
+    let mut bytes = table_header(names.len() as u32, count).to_vec();
+    bytes.extend_from_slice(&body);
+    write_atomic(out, &bytes)?;
+    println!(
+        "table: {count} readings of {} features -> {}",
+        names.len(),
+        out.display()
+    );
+    Ok(())
+}
+
+fn damage(input: &Path, mode: &str, out: &Path) -> Result<()> {
+    let mut b = fs::read(input).with_context(|| format!("reading {}", input.display()))?;
+    let h = ellipsoid_core::blob::Header::parse(&b)
+        .map_err(|e| anyhow!("{}: not a blob: {e}", input.display()))?;
+    ensure!(
+        h.len == b.len(),
+        "{}: blob length {} but file has {}",
+        input.display(),
+        h.len,
+        b.len()
+    );
+    match mode {
+        "flip" => {
+            let at =
+                ellipsoid_core::blob::HEADER_LEN + (h.len - ellipsoid_core::blob::HEADER_LEN) / 2;
+            b[at] ^= 0x04;
+        }
+        "torn" => b[h.len / 2..].fill(0xFF),
+        other => bail!("unknown damage mode {other:?} (flip or torn)"),
+    }
+    write_atomic(out, &b)?;
+    println!("damage: {mode} {} -> {}", input.display(), out.display());
+    Ok(())
+}
+
+/// One scored or faulted reading, as either side reports it.
+#[derive(Debug, PartialEq)]
+struct Row {
+    index: u32,
+    d2_bits: Option<u32>,
+    verdict: String,
+    alarm: bool,
+    fault: bool,
+    events: String,
+    top: Option<String>,
+}
+
+fn kv<'a>(line: &'a str, key: &str) -> Option<&'a str> {
+    line.split(' ')
+        .find_map(|w| w.strip_prefix(key).and_then(|r| r.strip_prefix('=')))
+}
+
+fn flag(v: Option<&str>, what: &str, line: usize) -> Result<bool> {
+    match v {
+        Some("0") => Ok(false),
+        Some("1") => Ok(true),
+        other => bail!("line {line}: {what} is {other:?}, not 0 or 1"),
+    }
+}
+
+struct Device {
+    rows: Vec<Row>,
+    /// (line, reading index or None for boot, active) per pin name.
+    pins: BTreeMap<String, Vec<(Option<u32>, bool)>>,
+    lines: Vec<String>,
+}
+
+fn parse_device(path: &Path) -> Result<Device> {
+    let text = read_text(path)?;
+    let mut dev = Device {
+        rows: Vec::new(),
+        pins: BTreeMap::new(),
+        lines: text.lines().map(str::to_string).collect(),
+    };
+    for (k, line) in text.lines().enumerate() {
+        let ln = k + 1;
+        let ctx = || format!("{}: line {ln}: {line:?}", path.display());
+        if line.starts_with("panic") {
+            bail!("{}: the device panicked", ctx());
+        }
+        if let Some(rest) = line.strip_prefix("r ") {
+            let index: u32 = rest
+                .split(' ')
+                .next()
+                .and_then(|w| w.parse().ok())
+                .ok_or_else(|| anyhow!("{}: no reading index", ctx()))?;
+            let d2 = kv(line, "d2").ok_or_else(|| anyhow!("{}: no d2", ctx()))?;
+            let d2_bits = if d2 == "-" {
+                None
+            } else {
+                Some(u32::from_str_radix(d2, 16).with_context(ctx)?)
+            };
+            let ev = kv(line, "event").unwrap_or("-");
+            dev.rows.push(Row {
+                index,
+                d2_bits,
+                verdict: kv(line, "v").unwrap_or("").to_string(),
+                alarm: flag(kv(line, "alarm"), "alarm", ln).with_context(ctx)?,
+                fault: flag(kv(line, "fault"), "fault", ln).with_context(ctx)?,
+                events: if ev == "-" {
+                    String::new()
+                } else {
+                    ev.to_string()
+                },
+                top: kv(line, "top").map(str::to_string),
+            });
+        } else if let Some(rest) = line.strip_prefix("pin ") {
+            let mut w = rest.split(' ');
+            let name = w.next().unwrap_or("").to_string();
+            let active = match w.next() {
+                Some("on") => true,
+                Some("off") => false,
+                other => bail!("{}: pin state {other:?}", ctx()),
+            };
+            let at = match kv(line, "at") {
+                Some("boot") => None,
+                Some(i) => Some(i.parse().with_context(ctx)?),
+                None => bail!("{}: pin change without at=", ctx()),
+            };
+            dev.pins.entry(name).or_default().push((at, active));
+        }
+    }
+    Ok(dev)
+}
+
+fn has_line(dev: &Device, prefix: &str) -> bool {
+    dev.lines.iter().any(|l| l.starts_with(prefix))
+}
+
+fn parse_replay(path: &Path) -> Result<Vec<Row>> {
+    let mut rdr =
+        csv::Reader::from_path(path).with_context(|| format!("opening {}", path.display()))?;
+    let h = rdr.headers()?.clone();
+    let col = |name: &str| {
+        h.iter()
+            .position(|c| c == name)
+            .ok_or_else(|| anyhow!("{}: line 1: no column {name}", path.display()))
+    };
+    let (ci, cb, cv, ca, cf, ce, ct) = (
+        col("index")?,
+        col("d2_bits")?,
+        col("verdict")?,
+        col("alarm")?,
+        col("fault")?,
+        col("event")?,
+        col("top_feature")?,
+    );
+    let mut rows = Vec::new();
+    for (k, rec) in rdr.records().enumerate() {
+        let ln = k + 2;
+        let rec = rec.with_context(|| format!("{}: line {ln}", path.display()))?;
+        let get = |c: usize| rec.get(c).unwrap_or("").trim();
+        let field = |c: usize, name: &str| -> Result<bool> {
+            flag(Some(get(c)), name, ln)
+                .with_context(|| format!("{}: field {name}", path.display()))
+        };
+        let bits = get(cb);
+        rows.push(Row {
+            index: get(ci)
+                .parse()
+                .with_context(|| format!("{}: line {ln}: field index", path.display()))?,
+            d2_bits: if bits.is_empty() {
+                None
+            } else {
+                Some(
+                    u32::from_str_radix(bits, 16)
+                        .with_context(|| format!("{}: line {ln}: field d2_bits", path.display()))?,
+                )
+            },
+            verdict: get(cv).to_string(),
+            alarm: field(ca, "alarm")?,
+            fault: field(cf, "fault")?,
+            events: get(ce).to_string(),
+            top: Some(get(ct).to_string()).filter(|s| !s.is_empty()),
+        });
+    }
+    Ok(rows)
+}
+
+fn compare(
+    device: &Path,
+    replay: &Path,
+    readings: &Path,
+    skip: &[String],
+    slot: &str,
+    unusable: Option<&str>,
+) -> Result<()> {
+    let (names, _) = feature_columns(readings, skip)?;
+    let dev = parse_device(device)?;
+    let rep = parse_replay(replay)?;
+    ensure!(
+        has_line(&dev, &format!("model slot={slot} ")),
+        "{}: the device did not use slot {slot}",
+        device.display()
+    );
+    if let Some(u) = unusable {
+        ensure!(
+            has_line(&dev, &format!("slot {u} unusable")),
+            "{}: the device did not report slot {u} as unusable",
+            device.display()
+        );
+    }
+    ensure!(
+        has_line(&dev, "end "),
+        "{}: the run did not finish",
+        device.display()
+    );
+    ensure!(
+        dev.rows.len() == rep.len(),
+        "the device reported {} readings, the replay {}",
+        dev.rows.len(),
+        rep.len()
+    );
+    ensure!(!rep.is_empty(), "{}: no readings", replay.display());
+    let mut mismatches = Vec::new();
+    let (mut bits_equal, mut tops) = (0usize, 0usize);
+    for (k, (d, r)) in dev.rows.iter().zip(&rep).enumerate() {
+        let mut why = Vec::new();
+        if d.index != k as u32 || r.index != k as u32 {
+            why.push(format!("index device {} replay {}", d.index, r.index));
+        }
+        if d.d2_bits != r.d2_bits {
+            why.push(format!(
+                "d2 bits device {:08x?} replay {:08x?}",
+                d.d2_bits, r.d2_bits
+            ));
+        } else if d.d2_bits.is_some() {
+            bits_equal += 1;
+        }
+        if (d.verdict.as_str(), d.alarm, d.fault, d.events.as_str())
+            != (r.verdict.as_str(), r.alarm, r.fault, r.events.as_str())
+        {
+            why.push(format!(
+                "timeline device {}/{}/{}/{:?} replay {}/{}/{}/{:?}",
+                d.verdict,
+                d.alarm as u8,
+                d.fault as u8,
+                d.events,
+                r.verdict,
+                r.alarm as u8,
+                r.fault as u8,
+                r.events
+            ));
+        }
+        if let Some(t) = &d.top {
+            tops += 1;
+            let i: usize = t.parse().with_context(|| format!("device top={t}"))?;
+            let name = names
+                .get(i)
+                .ok_or_else(|| anyhow!("device top={t}: no such feature"))?;
+            let same =
+                r.top.as_deref() == Some(name.as_str()) || r.top.as_deref() == Some(t.as_str());
+            if !same {
+                why.push(format!("top feature device {name} replay {:?}", r.top));
+            }
+        }
+        if !why.is_empty() {
+            mismatches.push(format!("reading {k}: {}", why.join("; ")));
+        }
+    }
+    // Every pin change must be where the replay's line level changes, and nowhere else.
+    let alarm_of: fn(&Row) -> bool = |r| r.alarm;
+    let fault_of: fn(&Row) -> bool = |r| r.fault;
+    for (pin, level_of) in [("alarm", alarm_of), ("fault", fault_of)] {
+        let mut expected = vec![(None, false)];
+        let mut prev = false;
+        for r in &rep {
+            let now = level_of(r);
+            if now != prev {
+                expected.push((Some(r.index), now));
+            }
+            prev = now;
+        }
+        let got = dev.pins.get(pin).cloned().unwrap_or_default();
+        if got != expected {
+            mismatches.push(format!(
+                "pin {pin}: device changed it {} times, the replay's timeline {} times (first difference at {:?})",
+                got.len(),
+                expected.len(),
+                got.iter().zip(&expected).position(|(a, b)| a != b)
+            ));
+        }
+    }
+    let last = rep
+        .last()
+        .map_or(0, |r| u8::from(r.alarm) | u8::from(r.fault) << 1);
+    let leds = dev
+        .lines
+        .iter()
+        .find_map(|l| l.strip_prefix("leds="))
+        .ok_or_else(|| anyhow!("{}: no leds= line", device.display()))?;
+    if u8::from_str_radix(leds, 2).ok() != Some(last) {
+        mismatches.push(format!(
+            "LED register {leds} at the end, the replay's last levels {last:02b}"
+        ));
+    }
+    if !mismatches.is_empty() {
+        for m in mismatches.iter().take(20) {
+            eprintln!("MISMATCH {m}");
+        }
+        bail!(
+            "{} mismatches between the device and the replay",
+            mismatches.len()
+        );
+    }
+    let raised = rep.iter().filter(|r| r.events.contains("raised")).count();
+    let faults = rep.iter().filter(|r| r.verdict == "fault").count();
+    println!(
+        "compare: slot {slot}: {} readings, d2 bit-identical on all {bits_equal} scored, {faults} faults, \
+         {raised} alarms raised ({tops} with the same top feature), pin changes and final LED levels identical",
+        rep.len()
+    );
+    Ok(())
+}
+
+fn no_model(device: &Path) -> Result<()> {
+    let dev = parse_device(device)?;
+    let d = device.display();
+    ensure!(
+        has_line(&dev, "model none"),
+        "{d}: the device found a model"
+    );
+    ensure!(
+        dev.rows.is_empty(),
+        "{d}: the device scored {} readings without a model",
+        dev.rows.len()
+    );
+    ensure!(has_line(&dev, "not scoring"), "{d}: no 'not scoring' line");
+    ensure!(
+        dev.pins.get("fault").map(Vec::as_slice) == Some(&[(None, true)]),
+        "{d}: the fault line was not raised at boot: {:?}",
+        dev.pins.get("fault")
+    );
+    ensure!(
+        dev.pins.get("alarm").map(Vec::as_slice) == Some(&[(None, false)]),
+        "{d}: the alarm line was not held off: {:?}",
+        dev.pins.get("alarm")
+    );
+    ensure!(
+        dev.lines.iter().any(|l| l == "leds=10"),
+        "{d}: LED register is not fault on, alarm off"
+    );
+    let unusable = dev
+        .lines
+        .iter()
+        .filter(|l| l.starts_with("slot ") && l.contains(" unusable"))
+        .count();
+    ensure!(
+        unusable == 2,
+        "{d}: {unusable} slots reported unusable, expected 2"
+    );
+    println!("no-model: both slots reported unusable, fault line on, alarm off, nothing scored");
+    Ok(())
+}
+
+fn run_tool(tool: &str, args: &[&str]) -> Result<String> {
+    let out = Command::new(tool)
+        .args(args)
+        .output()
+        .with_context(|| format!("running {tool} (install binutils-arm-none-eabi)"))?;
+    ensure!(
+        out.status.success(),
+        "{tool} {args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    Ok(String::from_utf8_lossy(&out.stdout).into_owned())
+}
+
+/// Names that mean a panic can happen: the panic entry points, the handler, and the
+/// `*_fail` / `unwrap_failed` helpers of bounds and option checks.
+fn is_panic_machinery(name: &str) -> bool {
+    name.contains("panic") || name.contains("rust_begin_unwind") || name.contains("_fail")
+}
+
+/// What the paths from some functions reach, in a disassembly.
+#[derive(Debug)]
+struct Reach {
+    roots: usize,
+    seen: BTreeSet<String>,
+    panics: Vec<String>,
+    indirect: Vec<String>,
+}
+
+/// Follow direct calls and branches (`bl`, `b`, `b.w`, `cbz`...) from the functions whose name ends
+/// with one of `roots`, in the text of `arm-none-eabi-objdump -d -C --no-show-raw-insn`.
+fn analyse(dis: &str, roots: &[String]) -> Result<Reach> {
+    // Function name -> (direct call or branch targets, whether it makes an indirect call).
+    let mut funcs: BTreeMap<String, (BTreeSet<String>, bool)> = BTreeMap::new();
+    let mut cur: Option<String> = None;
+    for line in dis.lines() {
+        if let Some(name) = line
+            .strip_suffix(">:")
+            .and_then(|l| l.split_once(" <"))
+            .map(|(_, n)| n)
+        {
+            cur = Some(name.to_string());
+            funcs.entry(name.to_string()).or_default();
+            continue;
+        }
+        let Some(f) = &cur else { continue };
+        let mut parts = line.split('\t').map(str::trim);
+        let (Some(_addr), Some(op)) = (parts.next(), parts.next()) else {
+            continue;
+        };
+        let args = parts.next().unwrap_or("");
+        let entry = funcs.entry(f.clone()).or_default();
+        let mnemonic = op.split('.').next().unwrap_or(op);
+        if (mnemonic == "blx" && !args.contains('<')) || (mnemonic == "bx" && args != "lr") {
+            entry.1 = true;
+        }
+        if mnemonic.starts_with('b') || mnemonic.starts_with("cb") {
+            if let Some(t) = args.split_once('<').and_then(|(_, t)| t.strip_suffix('>')) {
+                let target = t.split('+').next().unwrap_or(t).to_string();
+                if &target != f {
+                    entry.0.insert(target);
+                }
+            }
+        }
+    }
+    let mut stack: Vec<String> = Vec::new();
+    for r in roots {
+        let found: Vec<_> = funcs
+            .keys()
+            .filter(|k| k.ends_with(r.as_str()))
+            .cloned()
+            .collect();
+        ensure!(!found.is_empty(), "no function named *{r}: was it inlined?");
+        stack.extend(found);
+    }
+    let n_roots = stack.len();
+    let mut seen = BTreeSet::new();
+    while let Some(f) = stack.pop() {
+        if seen.insert(f.clone()) {
+            if let Some((targets, _)) = funcs.get(&f) {
+                stack.extend(targets.iter().cloned());
+            }
+        }
+    }
+    let panics = seen
+        .iter()
+        .filter(|f| is_panic_machinery(f))
+        .cloned()
+        .collect();
+    let indirect = seen
+        .iter()
+        .filter(|f| funcs.get(*f).is_some_and(|e| e.1))
+        .cloned()
+        .collect();
+    Ok(Reach {
+        roots: n_roots,
+        seen,
+        panics,
+        indirect,
+    })
+}
+
+fn reach(elf: &Path, roots: &[String]) -> Result<()> {
+    let elf_s = elf.to_string_lossy();
+    let dis = run_tool(
+        "arm-none-eabi-objdump",
+        &["-d", "-C", "--no-show-raw-insn", &elf_s],
+    )?;
+    let r = analyse(&dis, roots).with_context(|| format!("{}", elf.display()))?;
+    ensure!(
+        r.panics.is_empty(),
+        "panic machinery reachable from {roots:?} in {}: {:?}",
+        elf.display(),
+        r.panics
+    );
+    ensure!(
+        r.indirect.is_empty(),
+        "indirect calls on the paths from {roots:?} in {} (cannot be followed): {:?}",
+        elf.display(),
+        r.indirect
+    );
+    let in_image = dis
+        .lines()
+        .filter_map(|l| {
+            l.strip_suffix(">:")
+                .and_then(|l| l.split_once(" <"))
+                .map(|(_, n)| n)
+        })
+        .filter(|n| is_panic_machinery(n))
+        .count();
+    println!(
+        "reach: {} functions reachable from {} roots ({}), none of them panic machinery, no indirect calls \
+         (panic functions in the whole image: {in_image})",
+        r.seen.len(),
+        r.roots,
+        roots.join(", ")
+    );
+    Ok(())
+}
+
+/// Sizes of `.text`, `.rodata`, `.data`, `.bss` (the vector table counted with `.text`).
+fn sections(elf: &Path) -> Result<BTreeMap<String, u64>> {
+    let out = run_tool("arm-none-eabi-size", &["-A", &elf.to_string_lossy()])?;
+    let mut m = BTreeMap::new();
+    for line in out.lines() {
+        let mut w = line.split_whitespace();
+        if let (Some(name), Some(size)) = (w.next(), w.next().and_then(|s| s.parse::<u64>().ok())) {
+            let key = if name == ".vector_table" {
+                ".text"
+            } else {
+                name
+            };
+            *m.entry(key.to_string()).or_insert(0) += size;
+        }
+    }
+    Ok(m)
+}
+
+/// The crates the core brings into an image.
+const CORE_CRATES: [&str; 6] = [
+    "ellipsoid_core",
+    "postcard",
+    "serde",
+    "crc",
+    "heapless",
+    "libm",
+];
+/// The firmware's out-of-line wrappers whose bodies are the core's decode, score and explain.
+const CORE_WRAPPERS: [&str; 3] = [
+    "ellipsoid_firmware_example::slots::load",
+    "ellipsoid_firmware_example::node::score",
+    "ellipsoid_firmware_example::node::explain",
+];
+
+fn is_core_symbol(name: &str) -> bool {
+    let n = name.trim_start_matches('<');
+    CORE_CRATES.iter().any(|c| n.starts_with(&format!("{c}::")))
+        || CORE_WRAPPERS.iter().any(|w| n.starts_with(w))
+}
+
+fn core_share(elf: &Path) -> Result<BTreeMap<&'static str, u64>> {
+    let out = run_tool(
+        "arm-none-eabi-nm",
+        &["-S", "-C", "--size-sort", &elf.to_string_lossy()],
+    )?;
+    let mut m = BTreeMap::new();
+    for line in out.lines() {
+        let mut w = line.splitn(4, ' ');
+        let (_, Some(size), Some(kind), Some(name)) = (w.next(), w.next(), w.next(), w.next())
+        else {
+            continue;
+        };
+        let Ok(size) = u64::from_str_radix(size, 16) else {
+            continue;
+        };
+        let section = match kind {
+            "t" | "T" => ".text",
+            "r" | "R" => ".rodata",
+            "d" | "D" => ".data",
+            "b" | "B" => ".bss",
+            _ => continue,
+        };
+        if is_core_symbol(name) {
+            *m.entry(section).or_insert(0) += size;
+        }
+    }
+    Ok(m)
+}
+
+#[allow(clippy::too_many_arguments)]
+fn figures(
+    elf: &Path,
+    elf_m0: &Path,
+    cost: &Path,
+    device: &Path,
+    compared: &Path,
+    reach: &Path,
+    readme: &Path,
+) -> Result<()> {
+    let m4 = sections(elf)?;
+    let m0 = sections(elf_m0)?;
+    let share = core_share(elf)?;
+    let share_m0 = core_share(elf_m0)?;
+    let cost_text = read_text(cost)?;
+    let dev_text = read_text(device)?;
+    let cal = cost_text
+        .lines()
+        .find(|l| l.starts_with("calibrate "))
+        .ok_or_else(|| anyhow!("{}: no calibrate line", cost.display()))?;
+    let field = |line: &str, k: &str| -> Result<String> {
+        kv(line, k)
+            .map(str::to_string)
+            .ok_or_else(|| anyhow!("{}: no {k}= in {line:?}", cost.display()))
+    };
+    let peak = dev_text
+        .lines()
+        .find_map(|l| l.strip_prefix("stack peak_bytes="))
+        .ok_or_else(|| anyhow!("{}: no stack line", device.display()))?;
+    let get = |m: &BTreeMap<String, u64>, k: &str| m.get(k).copied().unwrap_or(0);
+    let mut s = String::new();
+    writeln!(s, "<!-- figures:begin (written by firmware-example/e2e.sh through node-tool; do not edit) -->")?;
+    writeln!(s, "### Firmware figures\n")?;
+    writeln!(
+        s,
+        "Measured by `firmware-example/e2e.sh` on the release images (`opt-level = 3`, LTO).\n"
+    )?;
+    writeln!(s, "**Flash and RAM** (`arm-none-eabi-size -A`; the vector table counted in `.text`). The core's share is the")?;
+    writeln!(s, "symbols of `ellipsoid_core` and the crates it brings (postcard, serde, crc, heapless, libm) plus the")?;
+    writeln!(s, "firmware's out-of-line wrappers `slots::load`, `node::score` and `node::explain`, whose bodies are the")?;
+    writeln!(s, "core's decode, score and explain inlined (`arm-none-eabi-nm -S`). Code the optimiser inlined elsewhere")?;
+    writeln!(s, "is counted with the firmware.\n")?;
+    writeln!(s, "| image | `.text` | `.rodata` | `.data` | `.bss` | core's `.text` | core's `.rodata` | core's `.data` + `.bss` |")?;
+    writeln!(s, "|---|---|---|---|---|---|---|---|")?;
+    for (name, m, sh) in [
+        (
+            "`ellipsoid-node`, thumbv7em-none-eabihf (Cortex-M4F)",
+            &m4,
+            &share,
+        ),
+        (
+            "`ellipsoid-node`, thumbv6m-none-eabi (Cortex-M0+)",
+            &m0,
+            &share_m0,
+        ),
+    ] {
+        writeln!(
+            s,
+            "| {name} | {} | {} | {} | {} | {} | {} | {} |",
+            get(m, ".text"),
+            get(m, ".rodata"),
+            get(m, ".data"),
+            get(m, ".bss"),
+            sh.get(".text").copied().unwrap_or(0),
+            sh.get(".rodata").copied().unwrap_or(0),
+            sh.get(".data").copied().unwrap_or(0) + sh.get(".bss").copied().unwrap_or(0),
+        )?;
+    }
+    writeln!(s)?;
+    writeln!(s, "The model itself is not in the image: it sits in a slot (`MODEL_A`/`MODEL_B`, 16 KiB each), and the")?;
+    writeln!(s, "decoded `Model<5>` lives on the stack of `main`.\n")?;
+    writeln!(s, "**Stack.** The stack below the stack pointer is painted with a pattern before the scoring loop, and")?;
+    writeln!(s, "the deepest word overwritten is found afterwards. Peak while scoring the demo's readings (boot,")?;
+    writeln!(s, "decoded model, scoring, explaining raised alarms and formatting the report included): **{peak} bytes**.")?;
+    writeln!(s, "The stack of one score alone (below its caller's frame, measured the same way in `score-cost`) is in the")?;
+    writeln!(s, "last column of the table below.\n")?;
+    writeln!(s, "**Cost per score on the Cortex-M4F** (`score-cost` in `qemu-system-arm -machine mps2-an386 -icount shift=0`).")?;
+    writeln!(s, "The emulator is not cycle-accurate, but with `-icount shift=0` every instruction advances its clock by")?;
+    writeln!(s, "1 ns, and SysTick on this board runs at 25 MHz, so SysTick counts instructions. Calibration: a loop of")?;
+    writeln!(
+        s,
+        "{} instructions (`subs`/`bne`) advanced SysTick by {} ticks, that is {} instructions per tick.",
+        field(cal, "instructions")?,
+        field(cal, "ticks")?,
+        field(cal, "instr_per_tick")?
+    )?;
+    writeln!(s, "Each figure is a loop of scores of four rotating readings through the out-of-line `node::score`")?;
+    writeln!(s, "(call, preprocessing, factor, squares, the finiteness check and the verdict; no log features), divided")?;
+    writeln!(s, "by the number of scores; the loop's own cost (the same loop around an empty out-of-line call) is shown")?;
+    writeln!(s, "beside it and is *included* in the figure. The floor is F(N) = N(N+1)/2 + 2N floating-point operations;")?;
+    writeln!(
+        s,
+        "the target is at most 3 instructions per floor operation at N = 8 and 16.\n"
+    )?;
+    writeln!(s, "| N | instructions per score | of which loop and call | floor F(N) | instructions per floor op | target | stack of a score, bytes |")?;
+    writeln!(s, "|---|---|---|---|---|---|---|")?;
+    for line in cost_text.lines().filter(|l| l.starts_with("cost ")) {
+        let n = field(line, "n")?;
+        let ipo: f64 = field(line, "instr_per_op")?.parse()?;
+        let floor: f64 = field(line, "floor_ops")?.parse()?;
+        let target = match n.as_str() {
+            "8" | "16" => format!(
+                "≤ {:.0}: {}",
+                3.0 * floor,
+                if ipo <= 3.0 { "met" } else { "**missed**" }
+            ),
+            _ => "—".to_string(),
+        };
+        let st = cost_text
+            .lines()
+            .find(|l| l.starts_with(&format!("stack n={n} ")))
+            .and_then(|l| kv(l, "score_bytes"))
+            .map(str::to_string)
+            .ok_or_else(|| anyhow!("{}: no stack line for n={n}", cost.display()))?;
+        writeln!(
+            s,
+            "| {n} | {} | {} | {} | {ipo:.2} | {target} | {st} |",
+            field(line, "instr_per_score")?,
+            field(line, "loop_overhead")?,
+            floor as u64,
+        )?;
+    }
+    writeln!(s)?;
+    writeln!(s, "**End to end** (the checks this run passed):\n")?;
+    for line in read_text(compared)?
+        .lines()
+        .chain(read_text(reach)?.lines())
+    {
+        writeln!(s, "- {line}")?;
+    }
+    writeln!(s, "<!-- figures:end -->")?;
+    let old = read_text(readme)?;
+    let (Some(b), Some(e)) = (
+        old.find("<!-- figures:begin"),
+        old.find("<!-- figures:end -->"),
+    ) else {
+        bail!(
+            "{}: no figure markers (<!-- figures:begin ... --> and <!-- figures:end -->)",
+            readme.display()
+        );
+    };
+    let new = format!(
+        "{}{}{}",
+        &old[..b],
+        s,
+        &old[e + "<!-- figures:end -->\n".len().min(old.len() - e)..]
+    );
+    write_atomic(readme, new.as_bytes())?;
+    println!("figures: written to {}", readme.display());
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    // The shape of `arm-none-eabi-objdump -d -C --no-show-raw-insn` output (binutils 2.40).
+    const DIS: &str = "
+00001000 <app::node::score>:
+    1000:\tpush\t{r7, lr}
+    1002:\tbl\t1100 <app::helper>
+    1006:\tcbz\tr0, 1010 <app::node::score+0x10>
+    100a:\tpop\t{r7, pc}
+
+00001100 <app::helper>:
+    1100:\tb.w\t1200 <core::panicking::panic_bounds_check>
+
+00001200 <core::panicking::panic_bounds_check>:
+    1200:\tbl\t1300 <rust_begin_unwind>
+
+00001300 <rust_begin_unwind>:
+    1300:\tb.n\t1300 <rust_begin_unwind>
+
+00001400 <app::safe>:
+    1400:\tvmul.f32\ts0, s0, s0
+    1404:\tbx\tlr
+
+00001500 <app::dynamic>:
+    1500:\tblx\tr3
+";
+
+    fn roots(r: &[&str]) -> Vec<String> {
+        r.iter().map(|s| s.to_string()).collect()
+    }
+
+    #[test]
+    fn reach_finds_panics_through_calls_and_tail_branches() {
+        let r = analyse(DIS, &roots(&["node::score"])).unwrap();
+        assert_eq!(r.roots, 1);
+        assert_eq!(
+            r.panics,
+            ["core::panicking::panic_bounds_check", "rust_begin_unwind"]
+        );
+        assert!(r.seen.contains("app::helper"));
+        assert!(r.indirect.is_empty());
+    }
+
+    #[test]
+    fn reach_passes_a_clean_function_and_flags_indirect_calls() {
+        let r = analyse(DIS, &roots(&["::safe"])).unwrap();
+        assert!(r.panics.is_empty() && r.indirect.is_empty());
+        assert_eq!(r.seen.len(), 1);
+        let r = analyse(DIS, &roots(&["::dynamic"])).unwrap();
+        assert_eq!(r.indirect, ["app::dynamic"]);
+        assert!(analyse(DIS, &roots(&["::missing"])).is_err());
+    }
+
+    #[test]
+    fn device_lines_parse() {
+        let l = "r 7 d2=41800000 v=above alarm=1 fault=0 event=fault-cleared+raised top=3";
+        assert_eq!(kv(l, "d2"), Some("41800000"));
+        assert_eq!(kv(l, "event"), Some("fault-cleared+raised"));
+        assert_eq!(kv(l, "top"), Some("3"));
+        assert_eq!(kv(l, "nope"), None);
+    }
+}
