@@ -40,7 +40,7 @@ use crate::stats::{correlation_of, Moments};
 use crate::{diagnostics, mcd, shrink};
 
 /// Most training rows kept for diagnostics and the `f32`-vs-`f64` check.
-pub const SAMPLE_ROWS: usize = 20_000;
+pub const SAMPLE_ROWS: usize = 10_000;
 
 /// Rows a reader thread gathers before folding them into its moments ([`Moments::push_block`]).
 const BLOCK_ROWS: usize = 128;
