@@ -142,7 +142,10 @@ run cost "$COST_ELF"
 cat "$W/cost.log"
 $TOOL figures --elf "$ELF" --elf-m0 "$ELF_M0" --cost "$W/cost.log" --device "$W/slot-a.log" \
   --compared "$W/compared.txt" --reach "$W/reach.txt" --readme firmware-example/README.md
-if grep -q '\*\*missed\*\*' firmware-example/README.md; then
+# The top README reports the same figures, from the same data.
+$TOOL figures --elf "$ELF" --elf-m0 "$ELF_M0" --cost "$W/cost.log" --device "$W/slot-a.log" \
+  --compared "$W/compared.txt" --reach "$W/reach.txt" --readme README.md
+if grep -q '\*\*missed\*\*' firmware-example/README.md README.md; then
   fail "a cost target was missed (see firmware-example/README.md)"
 fi
 say "e2e passed"
