@@ -67,6 +67,20 @@ pub enum EventKind {
     FaultCleared,
 }
 
+impl EventKind {
+    /// The event's name in reports, the device's log and the host's replay alike:
+    /// `raised`, `cleared`, `reset`, `fault`, `fault-cleared`.
+    pub const fn name(&self) -> &'static str {
+        match self {
+            EventKind::Raised => "raised",
+            EventKind::Cleared => "cleared",
+            EventKind::Reset => "reset",
+            EventKind::Fault(_) => "fault",
+            EventKind::FaultCleared => "fault-cleared",
+        }
+    }
+}
+
 /// An event and the index of the reading that caused it (0-based; a reset carries the index of
 /// the next reading).
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]

@@ -66,17 +66,6 @@ pub struct Node<A, F, const N: usize> {
     fault: Line<F>,
 }
 
-fn event_name(kind: &EventKind) -> &'static str {
-    match kind {
-        EventKind::Raised => "raised",
-        EventKind::Cleared => "cleared",
-        EventKind::Reset => "reset",
-        EventKind::Fault(_) => "fault",
-        EventKind::FaultCleared => "fault-cleared",
-        _ => "other",
-    }
-}
-
 struct Cause(ReadingFault);
 
 impl fmt::Display for Cause {
@@ -189,7 +178,7 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
             if k > 0 {
                 let _ = out.write_char('+');
             }
-            let _ = out.write_str(event_name(&e.kind));
+            let _ = out.write_str(EventKind::name(&e.kind));
         }
         if let Some(t) = top {
             let _ = write!(out, " top={t}");

@@ -137,27 +137,14 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
     train::write_outputs(&trained, &files.blob)?;
 
     let features = trained.fitted.features.clone();
-    let full = score_labelled(
-        trained.model.as_ref(),
-        &features,
-        &files.readings,
-        "label",
-        None,
-        None,
-        true,
-    )?;
+    let score = |model: &dyn crate::dims::AnyModel| {
+        score_labelled(model, &features, &files.readings, "label", None, None, true)
+    };
+    let full = score(trained.model.as_ref())?;
     // The same readings through a per-feature model: the same standardisation and the same
     // per-reading false-alarm target, but with the correlations left out (W = I).
     let diagonal = diagonal_model(&trained)?;
-    let diag = score_labelled(
-        diagonal.1.as_ref(),
-        &features,
-        &files.readings,
-        "label",
-        None,
-        None,
-        true,
-    )?;
+    let diag = score(diagonal.1.as_ref())?;
 
     output::write_atomic(&files.replay, |w| {
         let mut sink = CsvSink::new(w, &features)?;

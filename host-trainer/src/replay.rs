@@ -102,18 +102,6 @@ impl<'m> Replayer<'m> {
     }
 }
 
-/// The name an event has in replay output.
-pub fn event_name(kind: &EventKind) -> &'static str {
-    match kind {
-        EventKind::Raised => "raised",
-        EventKind::Cleared => "cleared",
-        EventKind::Reset => "reset",
-        EventKind::Fault(_) => "fault",
-        EventKind::FaultCleared => "fault-cleared",
-        _ => "other",
-    }
-}
-
 /// Writes replay rows as CSV: `index,d2,d2_bits,verdict,alarm,fault,event,top_feature,c_<feature>…`.
 ///
 /// `d2` is printed with the shortest decimal that reads back to the same `f32`; `d2_bits` is its
@@ -166,7 +154,7 @@ impl<W: Write> CsvSink<W> {
         }
         rec.push(u8::from(r.alarm).to_string());
         rec.push(u8::from(r.fault).to_string());
-        let events: Vec<&str> = r.events.iter().map(event_name).collect();
+        let events: Vec<&str> = r.events.iter().map(EventKind::name).collect();
         rec.push(events.join("+"));
         rec.push(
             r.top_feature()
