@@ -125,6 +125,47 @@ pub fn top_alarms(rows: &[ReplayRow], most: usize) -> Vec<(usize, f32, Vec<f32>)
     raised
 }
 
+/// The per-feature (diagonal) model beside a full one: the same preprocessing, mean and policy,
+/// but `W = I`, so each channel is judged against its own mean and spread and the correlations
+/// are ignored. Its threshold is the chi-square(N) quantile for the same per-reading `alpha`.
+pub fn diagonal_of(
+    model: &dyn AnyModel,
+    alpha: f64,
+) -> Result<(ellipsoid_core::Thresholds, Box<dyn AnyModel>)> {
+    use ellipsoid_core::{Model, ModelParams, Preprocess, Thresholds};
+    let p = model.params();
+    let n = model.n();
+    let alarm = crate::threshold::chi_square(n, alpha) as f32;
+    let thresholds = Thresholds {
+        alarm,
+        clear: alarm * (p.thresholds.clear / p.thresholds.alarm),
+    };
+    let built = crate::with_dim!(n, N => {
+        let mut w = [[0.0f32; N]; N];
+        for (i, row) in w.iter_mut().enumerate() {
+            row[i] = 1.0;
+        }
+        let params = ModelParams::<N> {
+            meta: p.meta,
+            preprocess: Preprocess {
+                log_mask: p.log_mask,
+                offset: core::array::from_fn(|i| p.offset[i]),
+                scale: core::array::from_fn(|i| p.scale[i]),
+            },
+            mean: core::array::from_fn(|i| p.mean[i]),
+            w,
+            thresholds,
+            policy: p.policy,
+        };
+        Model::new(params).map(|m| Box::new(m) as Box<dyn AnyModel>)
+    });
+    match built {
+        Some(Ok(m)) => Ok((thresholds, m)),
+        Some(Err(e)) => Err(anyhow::anyhow!("the per-feature model is invalid: {e}")),
+        None => Err(anyhow::anyhow!("{n} features: no model of that size")),
+    }
+}
+
 /// Run `evaluate`.
 pub fn run(a: &EvaluateArgs) -> Result<()> {
     let loaded = load_model(&a.model)?;
@@ -149,6 +190,25 @@ pub fn run(a: &EvaluateArgs) -> Result<()> {
     if let Some(path) = &a.report {
         let p = loaded.model.params();
         let d2 = scored.d2();
+        let alpha = loaded.card.as_ref().map_or_else(
+            || {
+                crate::threshold::chi_square_tail(
+                    loaded.features.len(),
+                    f64::from(p.thresholds.alarm),
+                )
+            },
+            |c| c.alpha,
+        );
+        let (diag_thr, diag_model) = diagonal_of(loaded.model.as_ref(), alpha)?;
+        let diag = score_labelled(
+            diag_model.as_ref(),
+            &loaded.features,
+            &a.model.input,
+            &a.label_column,
+            a.timestamp.clone(),
+            a.delimiter,
+            true,
+        )?;
         let data = report::ReportData {
             title: format!("Ellipsoid evaluation of {}", a.model.input.display()),
             subtitle: format!(
@@ -180,6 +240,16 @@ pub fn run(a: &EvaluateArgs) -> Result<()> {
             qq: qq_points(&d2, &scored.labels, loaded.features.len()),
             corr: model_correlation(loaded.model.as_ref()),
             top_alarms: top_alarms(&scored.rows, 8),
+            diagonal: Some(report::DiagonalComparison {
+                d2_diag: diag.d2(),
+                threshold_diag: f64::from(diag_thr.alarm),
+                alarm_diag: diag.alarm(),
+                notes: vec![format!(
+                    "per-feature model: the same standardisation and policy with the correlations \
+                     left out, thresholded at the chi-square({}) quantile for α = {alpha:.3e}",
+                    loaded.features.len()
+                )],
+            }),
             ..Default::default()
         };
         let html = report::render(&data)?;

@@ -9,14 +9,16 @@ use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result};
-use ellipsoid_core::{AlarmPolicy, ModelMeta, Thresholds};
+use ellipsoid_core::Thresholds;
 
-use crate::assess::{model_correlation, qq_points, score_labelled, top_alarms, Scored};
+use crate::assess::{
+    diagonal_of, model_correlation, qq_points, score_labelled, top_alarms, Scored,
+};
 use crate::cli::{CsvArgs, DemoArgs, FitArgs, ShrinkArg};
 use crate::demo_data::{self, Episode};
 use crate::replay::CsvSink;
-use crate::threshold::{self, Method};
-use crate::train::{self, build_blob, Trained};
+use crate::threshold::Method;
+use crate::train::{self, Trained};
 use crate::{output, report};
 
 /// 2026-03-02T06:00:00Z: when the invented baseline log starts.
@@ -143,7 +145,7 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
     let full = score(trained.model.as_ref())?;
     // The same readings through a per-feature model: the same standardisation and the same
     // per-reading false-alarm target, but with the correlations left out (W = I).
-    let diagonal = diagonal_model(&trained)?;
+    let diagonal = diagonal_of(trained.model.as_ref(), trained.candidates.alpha)?;
     let diag = score(diagonal.1.as_ref())?;
 
     output::write_atomic(&files.replay, |w| {
@@ -291,25 +293,6 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
 
 fn fmt_opt(v: Option<f64>) -> String {
     v.map_or("n/a".into(), |x| format!("{x:.3}"))
-}
-
-/// The per-feature model: the same fit with the correlations set to zero, thresholded at the
-/// chi-square(N) quantile for the same α. Returns its thresholds and the decoded model.
-fn diagonal_model(t: &Trained) -> Result<(Thresholds, Box<dyn crate::dims::AnyModel>)> {
-    let n = t.fitted.features.len();
-    let mut f = t.fitted.clone();
-    f.w = (0..n * n)
-        .map(|k| if k / n == k % n { 1.0 } else { 0.0 })
-        .collect();
-    let alarm = threshold::chi_square(n, t.candidates.alpha) as f32;
-    let thresholds = Thresholds {
-        alarm,
-        clear: alarm * (t.thresholds.clear / t.thresholds.alarm),
-    };
-    let policy: AlarmPolicy = t.policy;
-    let meta: ModelMeta = t.model.params().meta;
-    let (_, model) = build_blob(&f, thresholds, policy, meta)?;
-    Ok((thresholds, model))
 }
 
 fn demo_report(

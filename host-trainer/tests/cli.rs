@@ -215,12 +215,17 @@ fn evaluate_reports_metrics_and_json() {
         }
     }
     let labelled = write(dir.path(), "l.csv", &csv);
+    let report = dir.path().join("eval.html");
     ellipsoid()
         .args(["evaluate", "--model", model_path.to_str().unwrap()])
         .args(["--input", labelled.to_str().unwrap(), "--quiet"])
+        .args(["--report", report.to_str().unwrap()])
         .assert()
         .success()
         .stdout(predicate::str::contains("recall"));
+    let html = std::fs::read_to_string(&report).unwrap();
+    assert!(html.starts_with("<!DOCTYPE html>"));
+    assert!(html.contains("Full covariance against one feature at a time"));
     let json = ellipsoid()
         .args(["evaluate", "--model", model_path.to_str().unwrap()])
         .args(["--input", labelled.to_str().unwrap(), "--json", "--quiet"])
