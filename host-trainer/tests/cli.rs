@@ -437,3 +437,70 @@ fn demo_runs_end_to_end() {
     let bytes = std::fs::read(out.join("model.blob")).unwrap();
     assert!(Model::<5>::from_blob(&bytes).is_ok());
 }
+
+#[test]
+fn fit_options_f1_robust_shrinkage_and_log() {
+    let dir = tempfile::tempdir().unwrap();
+    // A baseline with three planted bad rows (lines 102, 503, 904 of the file).
+    let mut lines: Vec<String> = baseline_csv(1500, 4).lines().map(str::to_string).collect();
+    for l in [101usize, 502, 903] {
+        lines[l] = "2026-01-01T00:00:00Z,14.0,1.0,40.0".into();
+    }
+    let base = write(dir.path(), "dirty.csv", &(lines.join("\n") + "\n"));
+    let out = dir.path().join("m.blob");
+    let run = |extra: &[&str]| {
+        let a = ellipsoid()
+            .args([
+                "fit",
+                base.to_str().unwrap(),
+                "--out",
+                out.to_str().unwrap(),
+            ])
+            .args(["--quiet", "--json"])
+            .args(extra)
+            .assert()
+            .success();
+        serde_json::from_slice::<serde_json::Value>(&a.get_output().stdout).unwrap()
+    };
+    let v = run(&["--robust", "--holdout", "0"]);
+    let set_aside: Vec<u64> = serde_json::from_value(v["robust_set_aside_lines"].clone()).unwrap();
+    for planted in [102u64, 503, 904] {
+        assert!(
+            set_aside.contains(&planted),
+            "{planted} not in {set_aside:?}"
+        );
+    }
+    let v = run(&["--shrinkage", "ledoit-wolf"]);
+    let intensity = v["shrinkage"][1].as_f64().unwrap();
+    assert!((0.0..=1.0).contains(&intensity), "{intensity}");
+    let v = run(&["--log", "temp_c"]);
+    assert_eq!(v["log_features"][0], "temp_c");
+    // F1 on a labelled validation file: the chosen threshold is the F1 candidate.
+    let mut csv = String::from("current_a,pressure_bar,temp_c,label\n");
+    for i in 0..300 {
+        if (200..230).contains(&i) {
+            csv.push_str("13,1.0,40,1\n");
+        } else {
+            let _ = writeln!(csv, "{},{},40,0", 10.0 + (i % 5) as f64 * 0.1, 3.0);
+        }
+    }
+    let val = write(dir.path(), "val.csv", &csv);
+    let v = run(&["--threshold", "f1", "--validation", val.to_str().unwrap()]);
+    assert_eq!(v["threshold"]["method"], "f1");
+    let f1 = &v["threshold"]["candidates"]["f1"];
+    assert_eq!(f1[1].as_f64().unwrap(), 1.0, "{f1}");
+    let chosen = v["threshold"]["alarm"].as_f64().unwrap();
+    assert!((chosen - f1[0].as_f64().unwrap()).abs() <= 1e-4 * chosen);
+    // The empirical method without a hold-out is refused, naming the option that is missing.
+    ellipsoid()
+        .args([
+            "fit",
+            base.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ])
+        .args(["--quiet", "--threshold", "empirical", "--holdout", "0"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("--holdout"));
+}
