@@ -18,7 +18,7 @@
 //! | 5 | `Raised` | below, run + 1 = m | `Quiet` | both 0 | `Cleared` |
 //! | 6 | `Raised` | not below | `Raised` | below run 0 | — |
 //! | 7 | `Latched` | any score | `Latched` | — | — |
-//! | 8 | any | reading fault | same status, fault set | both 0 | `Fault` (only when the fault starts or its cause changes) |
+//! | 8 | any | reading fault, or a `Scored` whose d² is not finite | same status, fault set | both 0 | `Fault` (only when the fault starts or its cause changes) |
 //! | 9 | fault set | a scored reading | fault cleared, then rows 1–7 | — | `FaultCleared`, then any of the above |
 //! | 10 | `Raised`, `Latched` | [`AlarmMachine::reset`] | `Quiet` | both 0 | `Reset` |
 //! | 11 | no model ([`AlarmMachine::without_model`]) | anything, reset too | unchanged: fault line on, alarm off | — | `Fault(NoModel)` on the first reading only |
@@ -200,6 +200,16 @@ impl AlarmMachine {
         match score {
             Err(fault) => {
                 let cause = FaultCause::Reading(*fault);
+                if self.fault != Some(cause) {
+                    push(EventKind::Fault(cause));
+                }
+                self.fault = Some(cause);
+                self.above_run = 0;
+                self.below_run = 0;
+            }
+            // A `Scored` is plain data; one built by hand with a NaN or infinite d² is not a score.
+            Ok(s) if !s.d2.is_finite() => {
+                let cause = FaultCause::Reading(ReadingFault::Overflow);
                 if self.fault != Some(cause) {
                     push(EventKind::Fault(cause));
                 }
@@ -407,6 +417,19 @@ mod tests {
         let s = a.update(&sc(20.0));
         assert!(s.alarm);
         assert_eq!(kinds(&s).as_slice(), &[EventKind::Raised]);
+    }
+
+    #[test]
+    fn row_8_a_non_finite_d2_is_a_fault_not_normal() {
+        let mut a = machine(1, 1, false);
+        for bad in [f32::NAN, f32::INFINITY] {
+            let s = a.update(&Ok(Scored {
+                d2: bad,
+                verdict: Verdict::Below,
+            }));
+            assert!(s.fault && !s.alarm, "{bad}");
+        }
+        assert_eq!(a.fault(), Some(FaultCause::Reading(ReadingFault::Overflow)));
     }
 
     #[test]

@@ -78,8 +78,11 @@ impl Header {
         if version != VERSION {
             return Err(DecodeError::Version { found: version });
         }
-        if flags & !FLAG_LATCH != 0 || reserved != 0 {
+        if flags & !FLAG_LATCH != 0 {
             return Err(DecodeError::Flags { found: flags });
+        }
+        if reserved != 0 {
+            return Err(DecodeError::Reserved { found: reserved });
         }
         let len = usize::from(u16::from_le_bytes([l0, l1]));
         if len < HEADER_LEN + CRC_LEN {
@@ -120,9 +123,14 @@ pub enum DecodeError {
         /// N the caller asked for.
         expected: u8,
     },
-    /// Unknown flag bits, or a non-zero reserved byte.
+    /// Unknown flag bits.
     Flags {
         /// The flag byte found.
+        found: u8,
+    },
+    /// The reserved header byte is not zero.
+    Reserved {
+        /// The byte found.
         found: u8,
     },
     /// The length in the header does not match the bytes given.
@@ -161,6 +169,9 @@ impl fmt::Display for DecodeError {
                 write!(f, "blob has {found} features, expected {expected}")
             }
             DecodeError::Flags { found } => write!(f, "unknown flags {found:#04x} in blob header"),
+            DecodeError::Reserved { found } => {
+                write!(f, "reserved header byte is {found:#04x}, not 0")
+            }
             DecodeError::Length { stated, actual } => {
                 write!(f, "blob header states {stated} bytes but {actual} were given")
             }
@@ -491,8 +502,67 @@ mod tests {
             })
         );
         b[..n].copy_from_slice(good);
+        b[7] = 1;
+        assert_eq!(
+            decode::<2>(&b[..n]),
+            Err(DecodeError::Reserved { found: 1 })
+        );
+        b[..n].copy_from_slice(good);
         b[12] ^= 0x10;
         assert!(matches!(decode::<2>(&b[..n]), Err(DecodeError::Crc { .. })));
+    }
+
+    /// Rewrite a blob's length and CRC after editing its body, as a writer that means it would.
+    fn reseal(body: &[u8]) -> heapless::Vec<u8, 256> {
+        let mut b: heapless::Vec<u8, 256> = heapless::Vec::new();
+        let len = (body.len() + CRC_LEN) as u16;
+        b.extend_from_slice(body).unwrap();
+        b[8..10].copy_from_slice(&len.to_le_bytes());
+        let crc = checksum(&b);
+        b.extend_from_slice(&crc.to_le_bytes()).unwrap();
+        b
+    }
+
+    #[test]
+    fn body_failures_behind_a_valid_crc_have_their_variants() {
+        let mut buf = [0u8; max_len(2)];
+        let n = encode(&params(), &mut buf).unwrap();
+        let covered = &buf[..n - CRC_LEN];
+        // One byte more after the last field.
+        let mut longer: heapless::Vec<u8, 256> = heapless::Vec::new();
+        longer.extend_from_slice(covered).unwrap();
+        longer.push(0).unwrap();
+        assert_eq!(
+            decode::<2>(&reseal(&longer)),
+            Err(DecodeError::TrailingBytes)
+        );
+        // The body ends inside the last field.
+        assert_eq!(
+            decode::<2>(&reseal(&covered[..covered.len() - 1])),
+            Err(DecodeError::Body)
+        );
+        // A well-formed body whose model breaks a rule: W[1][1] (2.0, the last float before the
+        // two thresholds and the two varints) set to zero, and the blob resealed.
+        let mut bad = [0u8; max_len(2)];
+        bad[..n].copy_from_slice(&buf[..n]);
+        let at = n - CRC_LEN - 3 - 8 - 4;
+        assert_eq!(bad[at..at + 4], 2.0f32.to_le_bytes());
+        bad[at..at + 4].copy_from_slice(&0.0f32.to_le_bytes());
+        assert_eq!(
+            decode::<2>(&reseal(&bad[..n - CRC_LEN])),
+            Err(DecodeError::Invalid(ModelError::FactorDiagonal {
+                index: 1
+            }))
+        );
+    }
+
+    /// CRC-32/ISO-HDLC check value: the CRC of the ASCII bytes "123456789" is 0xCBF43926, as
+    /// listed in the catalogue of parametrised CRC algorithms and carried by the `crc` crate's
+    /// `CRC_32_ISO_HDLC.check` (the value is also from memory; the crate's constant is the source).
+    #[test]
+    fn crc_matches_the_catalogue_check_value() {
+        assert_eq!(checksum(b"123456789"), 0xCBF4_3926);
+        assert_eq!(checksum(b"123456789"), crc::CRC_32_ISO_HDLC.check);
     }
 
     #[test]

@@ -190,7 +190,7 @@ impl<const N: usize> Model<N> {
         } else {
             for (i, ((di, xi), ci)) in d.iter_mut().zip(x).zip(&self.center).enumerate() {
                 let t = if (mask >> i) & 1 == 1 {
-                    if xi.is_nan() {
+                    if !xi.is_finite() {
                         return Err(ReadingFault::NotFinite { feature: i as u8 });
                     }
                     if *xi <= 0.0 {
@@ -375,6 +375,12 @@ mod tests {
             m.score(&[1.0, f32::NAN]),
             Err(ReadingFault::NotFinite { feature: 1 })
         );
+        for inf in [f32::INFINITY, f32::NEG_INFINITY] {
+            assert_eq!(
+                m.score(&[1.0, inf]),
+                Err(ReadingFault::NotFinite { feature: 1 })
+            );
+        }
         assert!(m.score(&[10.0, core::f32::consts::E * 7.389_056]).is_ok());
     }
 
