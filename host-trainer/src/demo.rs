@@ -347,7 +347,13 @@ fn demo_report(
         .iter()
         .map(|e| (e.name.to_string(), e.start, e.end))
         .collect();
-    data_out.baseline_d2 = t.fitted.holdout_d2.iter().map(|v| f64::from(*v)).collect();
+    data_out.baseline_d2 = t
+        .fitted
+        .holdout_d2
+        .iter()
+        .filter(|v| v.is_finite())
+        .map(|v| f64::from(*v))
+        .collect();
     if data_out.qq.is_empty() {
         data_out.qq = qq_points(&d2, &full.labels, t.fitted.features.len());
     }

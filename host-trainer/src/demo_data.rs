@@ -538,7 +538,8 @@ mod tests {
     fn only_the_joint_model_sees_the_clog_and_every_episode_stands_out() {
         let d = generate(11);
         // The chi-square 99.9 % quantile for 5 degrees of freedom, from statrs (20.515 in the
-        // NIST/SEMATECH e-Handbook table 1.3.6.7.4).
+        // NIST/SEMATECH e-Handbook table 1.3.6.7.4; that row is from memory, as the project's copy
+        // of the table lists other degrees of freedom).
         let crit = ChiSquared::new(5.0).unwrap().inverse_cdf(0.999);
         assert!((crit - 20.515).abs() < 1e-3);
         let base_d2 = mahalanobis(&d.baseline, &d.baseline);

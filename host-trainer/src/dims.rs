@@ -242,6 +242,7 @@ pub fn decode_any(bytes: &[u8]) -> Result<Box<dyn AnyModel>, DecodeError> {
     with_dim!(n, N => {
         Model::<N>::from_blob(bytes).map(|m| Box::new(m) as Box<dyn AnyModel>)
     })
+    // A dimension outside 1..=32 has no `Model<N>`; report it with the largest one supported.
     .unwrap_or(Err(DecodeError::Dimension {
         found: header.n,
         expected: MAX_DIM as u8,

@@ -138,7 +138,8 @@ pub struct Fitted {
     pub diagnostics: diagnostics::Diagnostics,
     /// `W = L⁻¹` with `corr = L Lᵀ`, `p × p` row-major, lower-triangular.
     pub w: Vec<f64>,
-    /// The core's `f32` d² of every held-out row, in time order.
+    /// The core's `f32` d² of every held-out row, in time order; NaN where the core could not
+    /// score the row (a fault on the device).
     pub holdout_d2: Vec<f32>,
     /// The file line of each held-out row.
     pub holdout_lines: Vec<u64>,
@@ -537,7 +538,7 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
         }
         if h.faults > 0 {
             fitted.warnings.push(format!(
-                "{} held-out row(s) could not be scored by the core (d² overflows f32) and were left out",
+                "{} held-out row(s) could not be scored by the core in f32 (a value or d² beyond the f32 range); they count as faults in the hold-out check",
                 h.faults
             ));
         }
@@ -625,13 +626,16 @@ fn score_holdout(
                 reader.skip_or_fail(e)?;
                 continue;
             }
+            // An unscorable held-out row stays in the stream as NaN, so that replaying the
+            // hold-out through the alarm state machine sees the fault where the device would.
             match model.score(&x) {
-                Ok(s) => {
-                    out.d2.push(s.d2);
-                    out.lines.push(line);
+                Ok(s) => out.d2.push(s.d2),
+                Err(_) => {
+                    out.d2.push(f32::NAN);
+                    out.faults += 1;
                 }
-                Err(_) => out.faults += 1,
             }
+            out.lines.push(line);
         }
         Ok::<(), anyhow::Error>(())
     })
@@ -711,7 +715,7 @@ impl Job<'_> {
         let mut count = 0u64;
         loop {
             count += 1;
-            if count % 4096 == 0 && self.first_error.load(Ordering::Relaxed) < self.index {
+            if count.is_multiple_of(4096) && self.first_error.load(Ordering::Relaxed) < self.index {
                 break; // an earlier range failed: its error is the one reported
             }
             let bad = match reader.next_row() {

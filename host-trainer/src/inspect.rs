@@ -42,14 +42,20 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
         std::fs::read(path).with_context(|| format!("cannot read the blob {}", path.display()))?;
     let model = decode_any(&bytes)
         .map_err(|e| anyhow::anyhow!("{}: not a usable model blob: {e}", path.display()))?;
-    let card = ModelCard::read_for(path, &bytes).ok();
+    let (card, card_problem) = match ModelCard::read_for(path, &bytes) {
+        Ok(c) => (Some(c), None),
+        Err(e) if ModelCard::path_for(path).exists() => (None, Some(format!("{e:#}"))),
+        Err(_) => (None, None),
+    };
     let p = model.params();
     let n = model.n();
     let names: Vec<String> = match &card {
         Some(c) => c.features.clone(),
         None => (0..n).map(|i| format!("feature_{i}")).collect(),
     };
-    let cov = covariance(&p).unwrap_or_default();
+    // W has a positive diagonal (the decoder checks it), so WᵀW is invertible; NaN marks the
+    // impossible case instead of a panic.
+    let cov = covariance(&p).unwrap_or_else(|| vec![f64::NAN; n * n]);
     let mean = raw_mean(&p);
     let logs: Vec<bool> = (0..n).map(|i| (p.log_mask >> i) & 1 == 1).collect();
     if as_json {
@@ -76,6 +82,7 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
             "clear_after": p.policy.clear_after,
             "latch": p.policy.latch,
             "card": card,
+            "card_problem": card_problem,
         });
         println!("{}", serde_json::to_string_pretty(&v)?);
         return Ok(());
@@ -98,8 +105,10 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
         ),
         p.meta.trained_at
     );
-    if card.is_none() {
-        println!("  (no model card beside it: feature names unknown)");
+    match (&card, &card_problem) {
+        (None, Some(why)) => println!("  model card refused: {why}"),
+        (None, None) => println!("  (no model card beside it: feature names unknown)"),
+        _ => {}
     }
     println!(
         "  alarm when d² > {} for {} reading(s) in a row; clear when d² < {} for {}{}",

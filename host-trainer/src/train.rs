@@ -91,8 +91,16 @@ pub fn build_blob(
     let bytes = crate::with_dim!(n, N => {
         let params = fitted.params::<N>(thresholds, policy, meta);
         let mut buf = vec![0u8; blob::max_len(N)];
-        let len = blob::encode(&params, &mut buf)
-            .map_err(|e| anyhow::anyhow!("the fitted model cannot be encoded: {e}"))?;
+        let len = blob::encode(&params, &mut buf).map_err(|e| match e {
+            blob::EncodeError::Invalid(ellipsoid_core::ModelError::NotFinite { field, index }) => {
+                anyhow::anyhow!(
+                    "the fitted {field} of column `{}` is not finite in f32: its values exceed the \
+                     f32 range (about ±3.4e38) the device computes in; rescale that column",
+                    fitted.features.get(usize::from(index)).map_or("?", String::as_str)
+                )
+            }
+            other => anyhow::anyhow!("the fitted model cannot be encoded: {other}"),
+        })?;
         buf.truncate(len);
         buf
     })
@@ -140,7 +148,8 @@ pub fn score_file(
     Ok((d2, labels))
 }
 
-/// Replay held-out d² through the core's alarm state machine.
+/// Replay held-out d² through the core's alarm state machine. A NaN (a row the core could not
+/// score) reaches the machine as a non-finite score, which it treats as a fault.
 pub fn check_holdout(
     d2: &[f32],
     thresholds: Thresholds,
@@ -350,6 +359,25 @@ pub fn method_name(m: Method) -> &'static str {
         Method::Empirical => "empirical",
         Method::F1 => "f1",
     }
+}
+
+/// Refuse output paths that would overwrite each other (the card is the blob's path with `.json`).
+pub fn check_output_paths(out: &Path, report: Option<&Path>) -> Result<()> {
+    let card = ModelCard::path_for(out);
+    anyhow::ensure!(
+        card != out,
+        "--out {} would be overwritten by its own model card ({}): give the blob another extension, such as .blob",
+        out.display(),
+        card.display()
+    );
+    if let Some(r) = report {
+        anyhow::ensure!(
+            r != out && r != card,
+            "--report {} is the same file as the blob or its model card",
+            r.display()
+        );
+    }
+    Ok(())
 }
 
 /// Write the blob and its card (each atomically).
@@ -596,6 +624,13 @@ pub fn summary_text(t: &Trained) -> String {
             );
         }
     }
+    if t.method == Method::Empirical && t.holdout.is_some() {
+        let _ = writeln!(
+            s,
+            "    (the empirical threshold was taken from these same held-out rows, so this check is not \
+             independent and flatters the threshold: judge it on a later log with `evaluate`)"
+        );
+    }
     let _ = writeln!(
         s,
         "\nBlob: {} bytes (model id {:#010x}, sequence {}); decoded on the device it takes {} bytes of RAM.",
@@ -719,13 +754,22 @@ pub fn report_data(t: &Trained) -> report::ReportData {
             ),
             ("blob".into(), format!("{} bytes", t.blob.len())),
         ],
-        d2: f.holdout_d2.iter().map(|v| Some(*v)).collect(),
+        d2: f
+            .holdout_d2
+            .iter()
+            .map(|v| v.is_finite().then_some(*v))
+            .collect(),
         rate_hz: t.rate_hz,
         alarm_threshold: f64::from(t.thresholds.alarm),
         clear_threshold: f64::from(t.thresholds.clear),
         other_thresholds: others,
         alarm,
-        baseline_d2: f.holdout_d2.iter().map(|v| f64::from(*v)).collect(),
+        baseline_d2: f
+            .holdout_d2
+            .iter()
+            .filter(|v| v.is_finite())
+            .map(|v| f64::from(*v))
+            .collect(),
         qq: f.diagnostics.qq.clone(),
         corr: f.corr.clone(),
         ..Default::default()
@@ -734,6 +778,7 @@ pub fn report_data(t: &Trained) -> report::ReportData {
 
 /// Run `fit`.
 pub fn run(a: &FitArgs) -> Result<()> {
+    check_output_paths(&a.out, a.report.as_deref())?;
     let t = train(a)?;
     write_outputs(&t, &a.out)?;
     if let Some(path) = &a.report {
