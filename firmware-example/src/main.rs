@@ -35,6 +35,7 @@ fn main() -> ! {
         }
         Err(e) => {
             let _ = writeln!(out, "readings unusable: {e}");
+            node.source_failed(&mut out);
             false
         }
     };

@@ -126,6 +126,13 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
         self.model.as_ref()
     }
 
+    /// The reading source cannot deliver readings (an unusable table, a dead sensor bus): nothing
+    /// can be scored, so the fault line goes on. The alarm line keeps its level.
+    pub fn source_failed(&mut self, out: &mut impl Write) {
+        let alarm = self.machine.alarm_active();
+        self.drive(alarm, true, None, out);
+    }
+
     /// The logical levels last driven: (alarm, fault).
     pub fn lines(&self) -> (Option<bool>, Option<bool>) {
         (self.alarm.is_active(), self.fault.is_active())
@@ -380,6 +387,29 @@ mod tests {
             "{out}"
         );
         assert!(out.contains("pin fault on level=high at=boot"), "{out}");
+        alarm.done();
+        fault.done();
+    }
+
+    #[test]
+    fn a_failed_source_turns_the_fault_line_on() {
+        let mut alarm = Mock::new(&[Transaction::set(State::Low)]);
+        let mut fault = Mock::new(&[Transaction::set(State::Low), Transaction::set(State::High)]);
+        let a = blob_bytes(1, 1);
+        let slots = [Slot {
+            name: "A",
+            bytes: &a,
+        }];
+        let mut out = String::new();
+        let mut node = Node::<_, _, 2>::boot(
+            &slots,
+            Line::new(alarm.clone(), ActiveLevel::High),
+            Line::new(fault.clone(), ActiveLevel::High),
+            &mut out,
+        );
+        assert_eq!(node.lines(), (Some(false), Some(false)));
+        node.source_failed(&mut out);
+        assert_eq!(node.lines(), (Some(false), Some(true)));
         alarm.done();
         fault.done();
     }
