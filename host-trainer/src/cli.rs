@@ -353,8 +353,25 @@ fn replay_cmd(a: &ReplayArgs) -> Result<()> {
     Ok(())
 }
 
+/// `ellipsoid inspect m.blob | head` closes stdout early; `println!` then panics with a broken
+/// pipe. That is not an error of ours: end quietly with the status a shell gives a process
+/// killed by SIGPIPE (128 + 13), as other command-line tools do.
+fn quiet_on_closed_stdout() {
+    let default_hook = std::panic::take_hook();
+    std::panic::set_hook(Box::new(move |info| {
+        if info
+            .payload_as_str()
+            .is_some_and(|m| m.contains("Broken pipe"))
+        {
+            std::process::exit(141);
+        }
+        default_hook(info);
+    }));
+}
+
 /// Run the command line; errors are printed as `error: …` with their causes, and exit 1.
 pub fn main() -> ExitCode {
+    quiet_on_closed_stdout();
     let cli = Cli::parse();
     let result = match &cli.command {
         Command::Fit(a) => train::run(a),
