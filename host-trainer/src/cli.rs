@@ -359,10 +359,12 @@ fn replay_cmd(a: &ReplayArgs) -> Result<()> {
 fn quiet_on_closed_stdout() {
     let default_hook = std::panic::take_hook();
     std::panic::set_hook(Box::new(move |info| {
-        if info
-            .payload_as_str()
-            .is_some_and(|m| m.contains("Broken pipe"))
-        {
+        let payload = info.payload();
+        let message = payload
+            .downcast_ref::<String>()
+            .map(String::as_str)
+            .or_else(|| payload.downcast_ref::<&str>().copied());
+        if message.is_some_and(|m| m.contains("Broken pipe")) {
             std::process::exit(141);
         }
         default_hook(info);
