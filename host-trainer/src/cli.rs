@@ -4,11 +4,11 @@
 use std::path::PathBuf;
 use std::process::ExitCode;
 
-use anyhow::{Context, Result};
+use anyhow::Result;
 use clap::{Args, Parser, Subcommand};
 
 use crate::card::ModelCard;
-use crate::dims::decode_any;
+use crate::dims::decode_file;
 use crate::ingest::CsvOptions;
 use crate::replay::{to_device, CsvSink, Replayer};
 use crate::threshold::Method;
@@ -285,10 +285,7 @@ pub struct LoadedModel {
 /// Read and validate a blob, and find its feature names (card or `--features`).
 pub fn load_model(input: &ModelInput) -> Result<LoadedModel> {
     let path = &input.model;
-    let bytes =
-        std::fs::read(path).with_context(|| format!("cannot read the model {}", path.display()))?;
-    let model = decode_any(&bytes)
-        .map_err(|e| anyhow::anyhow!("{}: not a usable model blob: {e}", path.display()))?;
+    let (bytes, model) = decode_file(path)?;
     let (features, card) = match &input.features {
         Some(f) => (f.clone(), None),
         None => {

@@ -235,6 +235,24 @@ impl<const N: usize> AnyModel for Model<N> {
     }
 }
 
+/// Read and decode a blob file, with errors that name the file (and say plainly when the blob's
+/// dimension is one no `Model<N>` exists for).
+pub fn decode_file(path: &std::path::Path) -> anyhow::Result<(Vec<u8>, Box<dyn AnyModel>)> {
+    let bytes = std::fs::read(path)
+        .map_err(|e| anyhow::anyhow!("cannot read the model blob {}: {e}", path.display()))?;
+    if let Ok(h) = blob::Header::parse(&bytes) {
+        anyhow::ensure!(
+            (1..=MAX_DIM).contains(&usize::from(h.n)),
+            "{}: the blob has {} features; models have 1 to {MAX_DIM}",
+            path.display(),
+            h.n
+        );
+    }
+    let model = decode_any(&bytes)
+        .map_err(|e| anyhow::anyhow!("{}: not a usable model blob: {e}", path.display()))?;
+    Ok((bytes, model))
+}
+
 /// Decode a blob of any supported dimension through the core's decoder.
 pub fn decode_any(bytes: &[u8]) -> Result<Box<dyn AnyModel>, DecodeError> {
     let header = blob::Header::parse(bytes)?;

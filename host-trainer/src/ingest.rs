@@ -96,6 +96,18 @@ pub enum IngestError {
         /// 1-based position of the repeat.
         second: usize,
     },
+    /// The column selection names the same column twice.
+    #[error("{file}: the column selection names `{name}` twice (positions {first} and {second} of the list)")]
+    RepeatedSelection {
+        /// The file.
+        file: String,
+        /// The repeated name.
+        name: String,
+        /// 1-based position of its first mention in the selection.
+        first: usize,
+        /// 1-based position of the repeat.
+        second: usize,
+    },
     /// A header cell that would be a feature has no name.
     #[error("{file}:1: column {index} has no name")]
     UnnamedColumn {
@@ -444,12 +456,12 @@ impl Layout {
                     if Some(i) == timestamp_field {
                         return Err(conflict(i, "feature", "timestamp"));
                     }
-                    if c[..k].contains(&i) {
-                        return Err(IngestError::DuplicateColumn {
+                    if let Some(j) = c[..k].iter().position(|&x| x == i) {
+                        return Err(IngestError::RepeatedSelection {
                             file,
                             name: names[i].clone(),
-                            first: i + 1,
-                            second: i + 1,
+                            first: j + 1,
+                            second: k + 1,
                         });
                     }
                 }

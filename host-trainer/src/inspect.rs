@@ -2,12 +2,12 @@
 
 use std::path::Path;
 
-use anyhow::{Context, Result};
+use anyhow::Result;
 use nalgebra::DMatrix;
 use serde_json::json;
 
 use crate::card::ModelCard;
-use crate::dims::{decode_any, ParamsView};
+use crate::dims::{decode_file, ParamsView};
 
 /// The covariance of the (log-transformed) reading in its own units, rebuilt from the blob:
 /// `Σᵤ = (WᵀW)⁻¹` in the standardised space, then `Σ = S⁻¹ Σᵤ S⁻¹` with `S = diag(scale)`.
@@ -38,10 +38,7 @@ pub fn raw_mean(p: &ParamsView) -> Vec<f64> {
 
 /// Run `inspect`.
 pub fn run(path: &Path, as_json: bool) -> Result<()> {
-    let bytes =
-        std::fs::read(path).with_context(|| format!("cannot read the blob {}", path.display()))?;
-    let model = decode_any(&bytes)
-        .map_err(|e| anyhow::anyhow!("{}: not a usable model blob: {e}", path.display()))?;
+    let (bytes, model) = decode_file(path)?;
     let (card, card_problem) = match ModelCard::read_for(path, &bytes) {
         Ok(c) => (Some(c), None),
         Err(e) if ModelCard::path_for(path).exists() => (None, Some(format!("{e:#}"))),

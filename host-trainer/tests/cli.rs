@@ -362,6 +362,22 @@ fn bad_inputs_are_refused_with_file_line_and_column() {
         }
         assert!(!out.exists(), "{name}: a failed fit must write nothing");
     }
+    // The same column twice in --columns.
+    let path0 = write(dir.path(), "twice.csv", &good);
+    ellipsoid()
+        .args([
+            "fit",
+            path0.to_str().unwrap(),
+            "--out",
+            "/dev/null/x.blob",
+            "--quiet",
+        ])
+        .args(["--columns", "current_a,temp_c,current_a"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains(
+            "names `current_a` twice (positions 1 and 3",
+        ));
     // A missing column asked for by --columns.
     let path = write(dir.path(), "ok.csv", &good);
     ellipsoid()
