@@ -44,7 +44,12 @@ pub struct HoldoutCheck {
     /// hold-out (`χ²₀.₉₅(2k + 2) / 2` alarms in the hold-out's length; 3 for k = 0). A short hold-out
     /// with no alarm only bounds the rate, and this says by how much.
     pub false_alarms_per_day_upper95: f64,
+    /// File lines of the readings that raised those alarms (the first [`MAX_ALARM_LINES`]).
+    pub alarm_lines: Vec<u64>,
 }
+
+/// How many false-alarm lines the hold-out check lists.
+pub const MAX_ALARM_LINES: usize = 20;
 
 /// The one-sided 95 % upper bound on a Poisson mean after observing `k` events.
 pub fn poisson_upper95(k: u64) -> f64 {
@@ -150,15 +155,20 @@ pub fn score_file(
 
 /// Replay held-out d² through the core's alarm state machine. A NaN (a row the core could not
 /// score) reaches the machine as a non-finite score, which it treats as a fault.
+///
+/// `lines` are the file lines of the held-out rows (same length as `d2`), so that each false
+/// alarm can be traced back to the log.
 pub fn check_holdout(
     d2: &[f32],
+    lines: &[u64],
     thresholds: Thresholds,
     policy: AlarmPolicy,
     rate_hz: f64,
 ) -> HoldoutCheck {
     let mut machine = AlarmMachine::new(thresholds, policy);
     let (mut above, mut raised) = (0u64, 0u64);
-    for v in d2 {
+    let mut alarm_lines = Vec::new();
+    for (i, v) in d2.iter().enumerate() {
         let verdict = if *v > thresholds.alarm {
             Verdict::Above
         } else {
@@ -166,11 +176,14 @@ pub fn check_holdout(
         };
         above += u64::from(verdict == Verdict::Above);
         let step = machine.update(&Ok(Scored { d2: *v, verdict }));
-        raised += step
-            .events
-            .iter()
-            .filter(|e| e.kind == ellipsoid_core::EventKind::Raised)
-            .count() as u64;
+        for e in &step.events {
+            if e.kind == ellipsoid_core::EventKind::Raised {
+                raised += 1;
+                if alarm_lines.len() < MAX_ALARM_LINES {
+                    alarm_lines.extend(lines.get(i).copied());
+                }
+            }
+        }
     }
     let readings = d2.len() as u64;
     let days = readings as f64 / rate_hz / SECONDS_PER_DAY;
@@ -194,6 +207,7 @@ pub fn check_holdout(
         } else {
             f64::INFINITY
         },
+        alarm_lines,
     }
 }
 
@@ -316,8 +330,15 @@ pub fn train(a: &FitArgs) -> Result<Trained> {
         clear: (alarm * a.clear_fraction) as f32,
     };
     let (blob_bytes, model) = build_blob(&fitted, thresholds, policy, meta)?;
-    let holdout = (!fitted.holdout_d2.is_empty())
-        .then(|| check_holdout(&fitted.holdout_d2, thresholds, policy, a.rate_hz));
+    let holdout = (!fitted.holdout_d2.is_empty()).then(|| {
+        check_holdout(
+            &fitted.holdout_d2,
+            &fitted.holdout_lines,
+            thresholds,
+            policy,
+            a.rate_hz,
+        )
+    });
     let log_features = fitted
         .features
         .iter()
@@ -616,6 +637,20 @@ pub fn summary_text(t: &Trained) -> String {
                 "  held-out baseline replayed through the alarm state machine: {} readings ({:.1} h), {} above ({:.3e}), {} alarms raised = {:.2} false alarms a day (95 % upper bound {:.1})",
                 h.readings, h.hours, h.readings_above, h.fraction_above, h.alarms_raised, h.false_alarms_per_day, h.false_alarms_per_day_upper95
             );
+            if !h.alarm_lines.is_empty() {
+                let shown: Vec<String> = h.alarm_lines.iter().map(u64::to_string).collect();
+                let _ = writeln!(
+                    s,
+                    "    false alarms raised at lines {}{} of {}",
+                    shown.join(", "),
+                    if h.alarms_raised as usize > h.alarm_lines.len() {
+                        ", …"
+                    } else {
+                        ""
+                    },
+                    t.baseline
+                );
+            }
         }
         None => {
             let _ = writeln!(
@@ -839,7 +874,9 @@ mod tests {
         d2[500] = 11.0;
         d2[900] = 12.0;
         d2[901] = 12.0;
-        let h = check_holdout(&d2, thresholds, policy, 1.0);
+        let lines: Vec<u64> = (2..2 + d2.len() as u64).collect();
+        let h = check_holdout(&d2, &lines, thresholds, policy, 1.0);
+        assert_eq!(h.alarm_lines, vec![103, 903]);
         assert_eq!(h.readings_above, 5);
         assert_eq!(h.alarms_raised, 2);
         assert!((h.false_alarms_per_day - 2.0).abs() < 1e-12);
