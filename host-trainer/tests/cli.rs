@@ -40,16 +40,22 @@ fn write(dir: &Path, name: &str, text: &str) -> PathBuf {
     p
 }
 
+/// `ellipsoid fit BASE --out OUT`, to which a test adds its options.
+fn fit(base: &Path, out: &Path) -> Command {
+    let mut c = ellipsoid();
+    c.args([
+        "fit",
+        base.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    c
+}
+
 fn fit_ok(dir: &Path) -> PathBuf {
     let base = write(dir, "base.csv", &baseline_csv(2000, 1));
     let out = dir.join("m.blob");
-    ellipsoid()
-        .args([
-            "fit",
-            base.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-        ])
+    fit(&base, &out)
         .args(["--quiet", "--trained-at", "1767225600"])
         .assert()
         .success()
@@ -62,14 +68,8 @@ fn fit_refuses_outputs_that_would_overwrite_each_other() {
     let dir = tempfile::tempdir().unwrap();
     let base = write(dir.path(), "base.csv", &baseline_csv(200, 5));
     let out = dir.path().join("m.json");
-    ellipsoid()
-        .args([
-            "fit",
-            base.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-            "--quiet",
-        ])
+    fit(&base, &out)
+        .args(["--quiet"])
         .assert()
         .failure()
         .stderr(predicate::str::contains(
@@ -77,14 +77,8 @@ fn fit_refuses_outputs_that_would_overwrite_each_other() {
         ));
     assert!(!out.exists());
     let out = dir.path().join("m.blob");
-    ellipsoid()
-        .args([
-            "fit",
-            base.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-            "--quiet",
-        ])
+    fit(&base, &out)
+        .args(["--quiet"])
         .args(["--report", dir.path().join("m.json").to_str().unwrap()])
         .assert()
         .failure()
@@ -140,13 +134,7 @@ fn fit_json_matches_the_nist_worked_example() {
         "len,wid,ht\n4.0,2.0,0.60\n4.2,2.1,0.59\n3.9,2.0,0.58\n4.3,2.1,0.62\n4.1,2.2,0.63\n",
     );
     let out = dir.path().join("nist.blob");
-    let json = ellipsoid()
-        .args([
-            "fit",
-            base.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-        ])
+    let json = fit(&base, &out)
         .args(["--holdout", "0", "--json", "--quiet"])
         .assert()
         .success()
@@ -345,16 +333,7 @@ fn bad_inputs_are_refused_with_file_line_and_column() {
     for (name, text, needles) in cases {
         let path = write(dir.path(), &format!("{name}.csv"), &text);
         let out = dir.path().join(format!("{name}.blob"));
-        let assert = ellipsoid()
-            .args([
-                "fit",
-                path.to_str().unwrap(),
-                "--out",
-                out.to_str().unwrap(),
-                "--quiet",
-            ])
-            .assert()
-            .failure();
+        let assert = fit(&path, &out).args(["--quiet"]).assert().failure();
         let stderr = String::from_utf8_lossy(&assert.get_output().stderr).to_string();
         assert!(stderr.contains(&format!("{name}.csv")), "{name}: {stderr}");
         for n in needles {
@@ -397,26 +376,14 @@ fn bad_inputs_are_refused_with_file_line_and_column() {
     lines[9] = "2026-01-01T00:00:09Z,NaN,3.0,40".into();
     let path = write(dir.path(), "skip.csv", &lines.join("\n"));
     let out = dir.path().join("skip.blob");
-    ellipsoid()
-        .args([
-            "fit",
-            path.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-        ])
+    fit(&path, &out)
         .args(["--skip-bad-rows", "--quiet", "--holdout", "0"])
         .assert()
         .success()
         .stdout(predicate::str::contains("2 skipped"));
     // Fewer than N + 1 usable rows.
     let path = write(dir.path(), "few.csv", "a,b,c\n1,2,3\n2,3,1\n3,1,2\n");
-    ellipsoid()
-        .args([
-            "fit",
-            path.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-        ])
+    fit(&path, &out)
         .args(["--quiet", "--holdout", "0"])
         .assert()
         .failure()
@@ -434,14 +401,8 @@ fn constant_and_collinear_features_are_named() {
     }
     let path = write(dir.path(), "const.csv", &s);
     let out = dir.path().join("o.blob");
-    ellipsoid()
-        .args([
-            "fit",
-            path.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-            "--quiet",
-        ])
+    fit(&path, &out)
+        .args(["--quiet"])
         .assert()
         .failure()
         .stderr(predicate::str::contains("constant feature(s)"))
@@ -453,14 +414,8 @@ fn constant_and_collinear_features_are_named() {
         let _ = writeln!(s, "{a},{b},{}", 2.0 * a - b);
     }
     let path = write(dir.path(), "coll.csv", &s);
-    ellipsoid()
-        .args([
-            "fit",
-            path.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-            "--quiet",
-        ])
+    fit(&path, &out)
+        .args(["--quiet"])
         .assert()
         .failure()
         .stderr(predicate::str::contains("linear combination of `a`, `b`"));
@@ -507,13 +462,7 @@ fn fit_options_f1_robust_shrinkage_and_log() {
     let base = write(dir.path(), "dirty.csv", &(lines.join("\n") + "\n"));
     let out = dir.path().join("m.blob");
     let run = |extra: &[&str]| {
-        let a = ellipsoid()
-            .args([
-                "fit",
-                base.to_str().unwrap(),
-                "--out",
-                out.to_str().unwrap(),
-            ])
+        let a = fit(&base, &out)
             .args(["--quiet", "--json"])
             .args(extra)
             .assert()
@@ -550,13 +499,7 @@ fn fit_options_f1_robust_shrinkage_and_log() {
     let chosen = v["threshold"]["alarm"].as_f64().unwrap();
     assert!((chosen - f1[0].as_f64().unwrap()).abs() <= 1e-4 * chosen);
     // The empirical method without a hold-out is refused, naming the option that is missing.
-    ellipsoid()
-        .args([
-            "fit",
-            base.to_str().unwrap(),
-            "--out",
-            out.to_str().unwrap(),
-        ])
+    fit(&base, &out)
         .args(["--quiet", "--threshold", "empirical", "--holdout", "0"])
         .assert()
         .failure()
