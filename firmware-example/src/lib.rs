@@ -24,6 +24,8 @@
 #[cfg(all(feature = "mps2-an386", target_os = "none"))]
 #[path = "board/mps2_an386.rs"]
 pub mod board;
+#[cfg(test)]
+mod fixtures;
 pub mod node;
 pub mod pins;
 pub mod slots;

@@ -252,34 +252,13 @@ fn report_pin(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::fixtures::{slot_image, slots_ab};
     use crate::pins::ActiveLevel;
     use crate::source::{table_header, Table};
-    use ellipsoid_core::{blob, AlarmPolicy, ModelMeta, ModelParams, Preprocess, Thresholds};
     use embedded_hal_mock::eh1::digital::{Mock, State, Transaction};
 
     fn blob_bytes(sequence: u32, raise_after: u16) -> Vec<u8> {
-        let params = ModelParams::<2> {
-            meta: ModelMeta {
-                model_id: 7,
-                trained_at: 0,
-                sequence,
-            },
-            preprocess: Preprocess::identity(),
-            mean: [0.0; 2],
-            w: [[1.0, 0.0], [0.0, 1.0]],
-            thresholds: Thresholds {
-                alarm: 9.0,
-                clear: 4.0,
-            },
-            policy: AlarmPolicy {
-                raise_after,
-                clear_after: 1,
-                latch: false,
-            },
-        };
-        let mut buf = vec![0xFF; 512];
-        blob::encode(&params, &mut buf).unwrap();
-        buf
+        slot_image(sequence, raise_after).0
     }
 
     fn table(rows: &[[f32; 2]]) -> Vec<u8> {
@@ -357,16 +336,7 @@ mod tests {
         let mut torn = blob_bytes(5, 1);
         torn[20] ^= 0x40;
         let erased = vec![0xFF; 64];
-        let slots = [
-            Slot {
-                name: "A",
-                bytes: &torn,
-            },
-            Slot {
-                name: "B",
-                bytes: &erased,
-            },
-        ];
+        let slots = slots_ab(&torn, &erased);
         let mut out = String::new();
         let mut node = Node::<_, _, 2>::boot(
             &slots,
@@ -419,16 +389,7 @@ mod tests {
         // A: sequence 2, raise after 1. B: sequence 3, raise after 2. B must be used.
         let a = blob_bytes(2, 1);
         let b = blob_bytes(3, 2);
-        let slots = [
-            Slot {
-                name: "A",
-                bytes: &a,
-            },
-            Slot {
-                name: "B",
-                bytes: &b,
-            },
-        ];
+        let slots = slots_ab(&a, &b);
         let mut alarm = Mock::new(&[Transaction::set(State::Low), Transaction::set(State::High)]);
         let mut fault = Mock::new(&[Transaction::set(State::Low)]);
         let mut out = String::new();

@@ -125,27 +125,10 @@ pub fn choose<const N: usize>(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use ellipsoid_core::{AlarmPolicy, ModelMeta, ModelParams, Preprocess, Thresholds};
+    use crate::fixtures::{slot_image, slots_ab};
 
-    fn blob(sequence: u32) -> ([u8; 256], usize) {
-        let params = ModelParams::<2> {
-            meta: ModelMeta {
-                model_id: 0xabc,
-                trained_at: 1_700_000_000,
-                sequence,
-            },
-            preprocess: Preprocess::identity(),
-            mean: [0.0; 2],
-            w: [[1.0, 0.0], [0.5, 2.0]],
-            thresholds: Thresholds {
-                alarm: 9.0,
-                clear: 4.0,
-            },
-            policy: AlarmPolicy::default(),
-        };
-        let mut buf = [0xFFu8; 256];
-        let len = blob::encode(&params, &mut buf).unwrap();
-        (buf, len)
+    fn blob(sequence: u32) -> (Vec<u8>, usize) {
+        slot_image(sequence, 1)
     }
 
     fn chosen_seq(slots: &[Slot<'_>]) -> (Option<(usize, u32)>, Vec<String>) {
@@ -158,39 +141,12 @@ mod tests {
     fn newest_valid_slot_wins() {
         let (a, _) = blob(3);
         let (b, _) = blob(4);
-        let slots = [
-            Slot {
-                name: "A",
-                bytes: &a,
-            },
-            Slot {
-                name: "B",
-                bytes: &b,
-            },
-        ];
+        let slots = slots_ab(&a, &b);
         assert_eq!(chosen_seq(&slots).0, Some((1, 4)));
-        let slots = [
-            Slot {
-                name: "A",
-                bytes: &b,
-            },
-            Slot {
-                name: "B",
-                bytes: &a,
-            },
-        ];
+        let slots = slots_ab(&b, &a);
         assert_eq!(chosen_seq(&slots).0, Some((0, 4)));
         // Equal sequence numbers: the first slot.
-        let slots = [
-            Slot {
-                name: "A",
-                bytes: &a,
-            },
-            Slot {
-                name: "B",
-                bytes: &a,
-            },
-        ];
+        let slots = slots_ab(&a, &a);
         assert_eq!(chosen_seq(&slots).0, Some((0, 3)));
     }
 
@@ -200,16 +156,7 @@ mod tests {
         let (mut b, len) = blob(9);
         // A write cut short: the second half of the blob is still erased flash.
         b[len / 2..].fill(0xFF);
-        let slots = [
-            Slot {
-                name: "A",
-                bytes: &a,
-            },
-            Slot {
-                name: "B",
-                bytes: &b,
-            },
-        ];
+        let slots = slots_ab(&a, &b);
         let (c, lines) = chosen_seq(&slots);
         assert_eq!(c, Some((0, 3)));
         assert!(lines[1].starts_with("B Unusable(Blob(Crc"), "{lines:?}");

@@ -1,0 +1,46 @@
+//! Test fixtures shared by the host tests of the slots and the node.
+
+use ellipsoid_core::{blob, AlarmPolicy, ModelMeta, ModelParams, Preprocess, Thresholds};
+
+use crate::slots::Slot;
+
+/// A flash slot holding a valid 2-feature blob (identity `W`, alarm above 9, clear below 4,
+/// clear after 1), followed by erased flash (0xFF). Returns the slot's bytes and the blob's length.
+pub fn slot_image(sequence: u32, raise_after: u16) -> (Vec<u8>, usize) {
+    let params = ModelParams::<2> {
+        meta: ModelMeta {
+            model_id: 7,
+            trained_at: 0,
+            sequence,
+        },
+        preprocess: Preprocess::identity(),
+        mean: [0.0; 2],
+        w: [[1.0, 0.0], [0.0, 1.0]],
+        thresholds: Thresholds {
+            alarm: 9.0,
+            clear: 4.0,
+        },
+        policy: AlarmPolicy {
+            raise_after,
+            clear_after: 1,
+            latch: false,
+        },
+    };
+    let mut buf = vec![0xFF; 512];
+    let len = blob::encode(&params, &mut buf).unwrap();
+    (buf, len)
+}
+
+/// Slots A and B, in that order.
+pub fn slots_ab<'a>(a: &'a [u8], b: &'a [u8]) -> [Slot<'a>; 2] {
+    [
+        Slot {
+            name: "A",
+            bytes: a,
+        },
+        Slot {
+            name: "B",
+            bytes: b,
+        },
+    ]
+}
