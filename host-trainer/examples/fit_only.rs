@@ -5,8 +5,8 @@
 use std::path::PathBuf;
 use std::time::Instant;
 
+use ellipsoid_trainer::data::ingest::CsvOptions;
 use ellipsoid_trainer::fit::{fit_file, FitOptions};
-use ellipsoid_trainer::ingest::CsvOptions;
 
 fn main() -> anyhow::Result<()> {
     let mut args = std::env::args().skip(1);

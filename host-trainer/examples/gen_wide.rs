@@ -55,7 +55,7 @@ fn main() -> anyhow::Result<()> {
     let noise = [
         0.8, 0.02, 0.05, 0.15, 1.5, 0.6, 0.5, 0.1, 0.1, 0.08, 10.0, 1.0, 0.04, 0.05, 0.2, 0.5,
     ];
-    ellipsoid_trainer::output::write_atomic(&out, |w| {
+    ellipsoid_trainer::data::output::write_atomic(&out, |w| {
         let mut w = std::io::BufWriter::with_capacity(1 << 20, w);
         writeln!(w, "timestamp,{}", NAMES.join(","))?;
         let mut line = String::with_capacity(256);

@@ -6,7 +6,7 @@
 use std::path::PathBuf;
 use std::time::Instant;
 
-use ellipsoid_trainer::ingest::{self, CsvOptions, Layout, Reader};
+use ellipsoid_trainer::data::ingest::{self, CsvOptions, Layout, Reader};
 
 fn main() -> anyhow::Result<()> {
     let mut args = std::env::args().skip(1);

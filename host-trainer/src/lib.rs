@@ -2,41 +2,45 @@
 //! alarm threshold that can be defended, export the model blob (through the core's encoder), and
 //! replay, evaluate and explain readings through the core's own `f32` scoring.
 //!
-//! One concept a file:
+//! # Layers
 //!
-//! * [`ingest`]: streaming CSV reading with errors that name file, line, column and value.
-//! * [`stats`]: mergeable one-pass mean and covariance (Welford, Chan et al.).
-//! * [`shrink`], [`mcd`]: Ledoit–Wolf shrinkage, diagonal loading, FAST-MCD.
-//! * [`diagnostics`]: skewness, kurtosis, Mardia's tests, chi-square QQ.
-//! * [`fit`]: from a baseline file to fitted statistics and [`ellipsoid_core::ModelParams`].
-//! * [`threshold`]: chi-square, empirical and F1-optimal thresholds.
-//! * [`metrics`]: confusion matrix, ROC and PR AUC, detection delay, false alarms per day.
-//! * [`replay`]: every reading through the core's scoring and alarm state machine.
-//! * [`report`]: one self-contained HTML file with inline SVG plots.
-//! * [`demo_data`], [`demo`]: the invented booster-pump scenario, end to end.
-//! * [`output`]: write to a temporary file, then rename.
-//! * [`card`]: the model card, the JSON beside each blob that names its features.
-//! * [`dims`]: from a run-time dimension to the core's `const N`.
-//! * [`train`], [`inspect`], [`assess`]: the `fit`, `inspect` and `evaluate` commands.
-//! * [`cli`]: the `ellipsoid` command line.
+//! The modules form layers, and every import points down the stack (the test `layers_point_down`
+//! checks it):
+//!
+//! ```text
+//!  cli            the `ellipsoid` parser: assembles the verbs and dispatches
+//!  commands/      one file per verb (fit, inspect, replay, evaluate, demo): clap arguments + run
+//!  pipeline/      the work the verbs share: train a model, summarise a fit, score a labelled file
+//!  fit/  report/  from a baseline file to fitted statistics; the HTML page and its figures
+//!  stats/ data/ device/
+//!                 numerics (moments, shrinkage, MCD, diagnostics, thresholds, metrics);
+//!                 files (CSV reading, model card, atomic output, demo scenario);
+//!                 the core through a run-time dimension, and replay
+//!  ellipsoid-core the blob, validation, scoring, alarm state machine (no_std)
+//! ```
+//!
+//! A layer may use the layers below it and its peers on the same line only where no circle forms:
+//! `fit` uses `stats`, `data` and `device`; `report` uses `stats`; the bottom line's three
+//! do not use each other, except that `data` and `device` share nothing with `stats`.
+//!
+//! Where to look:
+//!
+//! * reading a CSV: [`data::ingest`]; the model card: [`data::card`]; atomic writes: [`data::output`];
+//! * the maths: [`stats::moments`], [`stats::shrink`], [`stats::mcd`], [`stats::diagnostics`],
+//!   [`stats::threshold`], [`stats::metrics`];
+//! * the fit of a file, in parallel: [`fit`];
+//! * the core from the host: [`device::dims`] (run-time N), [`device::replay`];
+//! * the report: [`report`];
+//! * what `fit` and the demo share: [`pipeline::train`], [`pipeline::summary`],
+//!   [`pipeline::evaluate`];
+//! * the verbs: [`commands`], assembled by [`cli`].
 #![forbid(unsafe_code)]
 
-pub mod assess;
-pub mod card;
 pub mod cli;
-pub mod demo;
-pub mod demo_data;
-pub mod diagnostics;
-pub mod dims;
+pub mod commands;
+pub mod data;
+pub mod device;
 pub mod fit;
-pub mod ingest;
-pub mod inspect;
-pub mod mcd;
-pub mod metrics;
-pub mod output;
-pub mod replay;
+pub mod pipeline;
 pub mod report;
-pub mod shrink;
 pub mod stats;
-pub mod threshold;
-pub mod train;

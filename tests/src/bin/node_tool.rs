@@ -185,20 +185,20 @@ fn table(input: &Path, model: &Path, out: &Path) -> Result<()> {
     // model card's feature names, and the trainer's one f64 → f32 conversion, so the device is fed
     // the very bits the replay scored.
     let blob = std::fs::read(model).with_context(|| format!("cannot read {}", model.display()))?;
-    let card = ellipsoid_trainer::card::ModelCard::read_for(model, &blob)?;
+    let card = ellipsoid_trainer::data::card::ModelCard::read_for(model, &blob)?;
     let names = card.features;
-    let opts = ellipsoid_trainer::ingest::CsvOptions {
+    let opts = ellipsoid_trainer::data::ingest::CsvOptions {
         columns: Some(names.clone()),
         allow_missing: true,
         quiet: true,
         ..Default::default()
     };
-    let mut reader = ellipsoid_trainer::ingest::Reader::open(input, &opts)?;
+    let mut reader = ellipsoid_trainer::data::ingest::Reader::open(input, &opts)?;
     let mut body = Vec::new();
     let mut count = 0u32;
     while let Some(row) = reader.next_row()? {
         for v in row.values {
-            body.extend_from_slice(&ellipsoid_trainer::replay::to_device(*v).to_le_bytes());
+            body.extend_from_slice(&ellipsoid_trainer::device::replay::to_device(*v).to_le_bytes());
         }
         count += 1;
     }

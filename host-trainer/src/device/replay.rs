@@ -9,7 +9,7 @@ use std::io::Write;
 use anyhow::Result;
 use ellipsoid_core::{AlarmMachine, EventKind, ReadingFault, Scored, Verdict};
 
-use crate::dims::AnyModel;
+use crate::device::dims::AnyModel;
 
 /// The one conversion from a CSV value to what the device receives: `f64` rounded to the
 /// nearest `f32`. Tools that make device input tables must use it too, so both sides see the same bits.

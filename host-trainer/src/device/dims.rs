@@ -195,6 +195,37 @@ pub struct ParamsView {
     pub policy: AlarmPolicy,
 }
 
+impl ParamsView {
+    /// The covariance of the (log-transformed) reading in its own units, rebuilt from the blob:
+    /// `Σᵤ = (WᵀW)⁻¹` in the standardised space, then `Σ = S⁻¹ Σᵤ S⁻¹` with `S = diag(scale)`.
+    pub fn covariance(&self) -> Option<Vec<f64>> {
+        let p = self;
+        let n = p.mean.len();
+        let w = nalgebra::DMatrix::from_fn(n, n, |i, j| f64::from(p.w[i * n + j]));
+        let precision = w.transpose() * &w;
+        let sigma_u = precision.try_inverse()?;
+        Some(
+            (0..n * n)
+                .map(|k| {
+                    let (i, j) = (k / n, k % n);
+                    sigma_u[(i, j)] / (f64::from(p.scale[i]) * f64::from(p.scale[j]))
+                })
+                .collect(),
+        )
+    }
+
+    /// The mean of the (log-transformed) reading in its own units: `offset + mean / scale`.
+    pub fn raw_mean(&self) -> Vec<f64> {
+        let p = self;
+        p.offset
+            .iter()
+            .zip(&p.mean)
+            .zip(&p.scale)
+            .map(|((o, m), s)| f64::from(*o) + f64::from(*m) / f64::from(*s))
+            .collect()
+    }
+}
+
 fn fixed<const N: usize>(x: &[f32]) -> [f32; N] {
     let mut a = [f32::NAN; N];
     for (d, s) in a.iter_mut().zip(x) {

@@ -9,17 +9,22 @@ use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result};
-use ellipsoid_core::Thresholds;
+use ellipsoid_core::{AlarmPolicy, Thresholds};
 
-use crate::assess::{
+use crate::data::ingest::CsvOptions;
+use crate::data::output;
+use crate::data::scenario::{self, Episode};
+use crate::device::dims::AnyModel;
+use crate::device::replay::CsvSink;
+use crate::fit::Shrinkage;
+use crate::pipeline::evaluate::{
     diagonal_of, model_correlation, qq_points, score_labelled, top_alarms, Scored,
 };
-use crate::cli::{CsvArgs, DemoArgs, FitArgs, ShrinkArg};
-use crate::demo_data::{self, Episode};
-use crate::replay::CsvSink;
-use crate::threshold::Method;
-use crate::train::{self, Trained};
-use crate::{output, report};
+use crate::pipeline::summary::report_data;
+use crate::pipeline::train::{train, write_outputs, TrainSpec, Trained};
+use crate::report;
+use crate::stats::threshold::Method;
+use clap::Args;
 
 /// 2026-03-02T06:00:00Z: when the invented baseline log starts.
 pub const DEMO_START_UNIX: i64 = 1_772_431_200;
@@ -93,53 +98,48 @@ fn describe(c: &Catch) -> String {
 pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
     std::fs::create_dir_all(dir).with_context(|| format!("cannot create {}", dir.display()))?;
     let files = DemoFiles::in_dir(dir);
-    let data = demo_data::generate(seed);
+    let data = scenario::generate(seed);
     let test_start = DEMO_START_UNIX + data.baseline.len() as i64;
     output::write_atomic(&files.baseline, |w| {
-        demo_data::write_csv(w, &data.baseline, None, DEMO_START_UNIX)
+        scenario::write_csv(w, &data.baseline, None, DEMO_START_UNIX)
     })?;
     output::write_atomic(&files.readings, |w| {
-        demo_data::write_csv(w, &data.test, Some(&data.labels), test_start)
+        scenario::write_csv(w, &data.test, Some(&data.labels), test_start)
     })?;
 
-    let fit_args = FitArgs {
+    let spec = TrainSpec {
         baseline: files.baseline.clone(),
-        out: files.blob.clone(),
-        csv: CsvArgs {
-            columns: None,
-            timestamp: None,
-            delimiter: None,
-            skip_bad_rows: false,
+        csv: CsvOptions {
             quiet: true,
+            ..CsvOptions::default()
         },
         log_columns: Vec::new(),
-        shrinkage: ShrinkArg::None,
-        loading: 0.01,
+        shrinkage: Shrinkage::None,
         robust: false,
         holdout: 0.25,
         threshold: Method::ChiSquare,
         alarms_per_day: 1.0,
-        rate_hz: demo_data::RATE_HZ,
+        rate_hz: scenario::RATE_HZ,
         alpha: None,
         validation: None,
         label_column: "label".into(),
-        raise_after: 3,
-        clear_after: 10,
+        policy: AlarmPolicy {
+            raise_after: 3,
+            clear_after: 10,
+            latch: false,
+        },
         clear_fraction: 0.75,
-        latch: false,
         model_id: None,
         sequence: 1,
         // The model was trained when its baseline ended.
         trained_at: Some(test_start as u64),
         threads: None,
-        report: None,
-        json: false,
     };
-    let trained = train::train(&fit_args)?;
-    train::write_outputs(&trained, &files.blob)?;
+    let trained = train(&spec)?;
+    write_outputs(&trained, &files.blob)?;
 
     let features = trained.fitted.features.clone();
-    let score = |model: &dyn crate::dims::AnyModel| {
+    let score = |model: &dyn AnyModel| {
         score_labelled(model, &features, &files.readings, "label", None, None, true)
     };
     let full = score(trained.model.as_ref())?;
@@ -157,8 +157,8 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
         Ok(())
     })?;
 
-    let eval = full.evaluate(demo_data::RATE_HZ);
-    let eval_diag = diag.evaluate(demo_data::RATE_HZ);
+    let eval = full.evaluate(scenario::RATE_HZ);
+    let eval_diag = diag.evaluate(scenario::RATE_HZ);
     let catches: Vec<(Catch, Catch)> = data
         .episodes
         .iter()
@@ -179,7 +179,7 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
     let _ = writeln!(
         s,
         "Ellipsoid demo: a booster pump on a greenhouse irrigation skid, 5 channels at {} Hz (seed {seed}).",
-        demo_data::RATE_HZ
+        scenario::RATE_HZ
     );
     let _ = writeln!(
         s,
@@ -297,7 +297,7 @@ fn fmt_opt(v: Option<f64>) -> String {
 
 fn demo_report(
     t: &Trained,
-    data: &demo_data::DemoData,
+    data: &scenario::DemoData,
     full: &Scored,
     diag: &Scored,
     diag_thr: &Thresholds,
@@ -313,7 +313,7 @@ fn demo_report(
             describe(c_diag)
         ));
     }
-    let eval = full.evaluate(demo_data::RATE_HZ);
+    let eval = full.evaluate(scenario::RATE_HZ);
     let rows: Vec<Vec<String>> = data
         .episodes
         .iter()
@@ -328,7 +328,7 @@ fn demo_report(
             ]
         })
         .collect();
-    let mut data_out = train::report_data(t);
+    let mut data_out = report_data(t);
     data_out.title = "Ellipsoid demo: greenhouse irrigation booster pump".into();
     data_out.subtitle = format!(
         "{} h baseline, {} h with injected faults, 5 channels at 1 Hz",
@@ -377,6 +377,20 @@ fn demo_report(
         rows,
     ));
     data_out
+}
+
+/// Options of `demo`.
+#[derive(Debug, Clone, Args)]
+pub struct DemoArgs {
+    /// Folder for everything the demo writes.
+    #[arg(long, short, default_value = "demo-out", value_name = "DIR")]
+    pub out: PathBuf,
+    /// Seed of the invented scenario.
+    #[arg(long, default_value_t = 7)]
+    pub seed: u64,
+    /// Print less.
+    #[arg(long, short)]
+    pub quiet: bool,
 }
 
 /// Run `demo`.

@@ -197,7 +197,7 @@ fn num(x: f64) -> String {
 
 /// Runs of `true` as `[start, end)`.
 fn runs(flags: &[bool]) -> Vec<(usize, usize)> {
-    crate::metrics::label_events(flags)
+    crate::stats::metrics::label_events(flags)
 }
 
 /// Lower and upper ends of a log axis that show `values` and `marks`, as powers of ten. The lower
@@ -1096,8 +1096,8 @@ pub fn render(data: &ReportData) -> Result<String> {
                         out,
                         "<p>Alarms raised outside labelled events: full covariance {}, per \
                          feature {}.</p>",
-                        crate::metrics::false_alarms(&data.alarm, l),
-                        crate::metrics::false_alarms(&diag.alarm_diag, l)
+                        crate::stats::metrics::false_alarms(&data.alarm, l),
+                        crate::stats::metrics::false_alarms(&diag.alarm_diag, l)
                     );
                 }
             }

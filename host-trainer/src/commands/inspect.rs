@@ -1,39 +1,22 @@
 //! `ellipsoid inspect`: validate a blob with the core's decoder and show everything in it.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use anyhow::Result;
-use nalgebra::DMatrix;
+use clap::Args;
 use serde_json::json;
 
-use crate::card::ModelCard;
-use crate::dims::{decode_file, ParamsView};
+use crate::data::card::ModelCard;
+use crate::device::dims::decode_file;
 
-/// The covariance of the (log-transformed) reading in its own units, rebuilt from the blob:
-/// `Σᵤ = (WᵀW)⁻¹` in the standardised space, then `Σ = S⁻¹ Σᵤ S⁻¹` with `S = diag(scale)`.
-pub fn covariance(p: &ParamsView) -> Option<Vec<f64>> {
-    let n = p.mean.len();
-    let w = DMatrix::from_fn(n, n, |i, j| f64::from(p.w[i * n + j]));
-    let precision = w.transpose() * &w;
-    let sigma_u = precision.try_inverse()?;
-    Some(
-        (0..n * n)
-            .map(|k| {
-                let (i, j) = (k / n, k % n);
-                sigma_u[(i, j)] / (f64::from(p.scale[i]) * f64::from(p.scale[j]))
-            })
-            .collect(),
-    )
-}
-
-/// The mean of the (log-transformed) reading in its own units: `offset + mean / scale`.
-pub fn raw_mean(p: &ParamsView) -> Vec<f64> {
-    p.offset
-        .iter()
-        .zip(&p.mean)
-        .zip(&p.scale)
-        .map(|((o, m), s)| f64::from(*o) + f64::from(*m) / f64::from(*s))
-        .collect()
+/// Options of `inspect`.
+#[derive(Debug, Clone, Args)]
+pub struct InspectArgs {
+    /// The blob.
+    pub blob: PathBuf,
+    /// Print as JSON.
+    #[arg(long)]
+    pub json: bool,
 }
 
 /// Run `inspect`.
@@ -52,8 +35,8 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
     };
     // W has a positive diagonal (the decoder checks it), so WᵀW is invertible; NaN marks the
     // impossible case instead of a panic.
-    let cov = covariance(&p).unwrap_or_else(|| vec![f64::NAN; n * n]);
-    let mean = raw_mean(&p);
+    let cov = p.covariance().unwrap_or_else(|| vec![f64::NAN; n * n]);
+    let mean = p.raw_mean();
     let logs: Vec<bool> = (0..n).map(|i| (p.log_mask >> i) & 1 == 1).collect();
     if as_json {
         let v = json!({

@@ -10,7 +10,7 @@ use std::path::{Path, PathBuf};
 use anyhow::{bail, Context, Result};
 use serde::{Deserialize, Serialize};
 
-use crate::output;
+use crate::data::output;
 
 /// What `fit` knew about a model that the blob does not carry.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]

@@ -2,7 +2,7 @@
 //!
 //! # The pipeline
 //!
-//! 1. Read the header ([`crate::ingest::Layout`]). Features named in [`FitOptions::log_columns`]
+//! 1. Read the header ([`crate::data::ingest::Layout`]). Features named in [`FitOptions::log_columns`]
 //!    are replaced by their natural log before anything else (a value `≤ 0` is an error).
 //! 2. If [`FitOptions::holdout`] is above zero, count the lines with `memchr` (cheap) and set the
 //!    last `holdout` fraction of the data lines aside, in time order, as the held-out tail.
@@ -35,9 +35,9 @@ use ellipsoid_core::{
 };
 use nalgebra::DMatrix;
 
-use crate::ingest::{self, CsvOptions, IngestError, Layout, Reader};
-use crate::stats::{correlation_of, Moments};
-use crate::{diagnostics, mcd, shrink};
+use crate::data::ingest::{self, CsvOptions, IngestError, Layout, Reader};
+use crate::stats::moments::{correlation_of, Moments};
+use crate::stats::{diagnostics, mcd, shrink};
 
 /// Most training rows kept for diagnostics and the `f32`-vs-`f64` check.
 pub const SAMPLE_ROWS: usize = 10_000;

@@ -1,16 +1,15 @@
-//! `ellipsoid evaluate`: score a labelled CSV through the core and measure how well the model and
-//! its alarm policy separate faults from healthy operation.
+//! Scoring a labelled CSV through the core and measuring how well the model and its alarm policy
+//! separate faults from healthy operation; the per-feature twin of a model, for comparison.
 
 use std::path::Path;
 
 use anyhow::Result;
 use statrs::distribution::{ChiSquared, ContinuousCDF};
 
-use crate::cli::{load_model, EvaluateArgs};
-use crate::dims::AnyModel;
-use crate::ingest::{CsvOptions, Reader};
-use crate::replay::{to_device, ReplayRow, Replayer};
-use crate::{inspect, metrics, output, report};
+use crate::data::ingest::{CsvOptions, Reader};
+use crate::device::dims::AnyModel;
+use crate::device::replay::{to_device, ReplayRow, Replayer};
+use crate::stats::metrics;
 
 /// A labelled stream after the core has scored it.
 pub struct Scored {
@@ -108,8 +107,8 @@ pub fn qq_points(d2: &[Option<f32>], labels: &[bool], n: usize) -> Vec<(f64, f64
 pub fn model_correlation(model: &dyn AnyModel) -> Vec<f64> {
     let p = model.params();
     let n = model.n();
-    let cov = inspect::covariance(&p).unwrap_or_else(|| vec![0.0; n * n]);
-    crate::stats::correlation_of(&cov, n)
+    let cov = p.covariance().unwrap_or_else(|| vec![0.0; n * n]);
+    crate::stats::moments::correlation_of(&cov, n)
 }
 
 /// The readings where an alarm was raised, the largest d² first, with their contributions.
@@ -135,7 +134,7 @@ pub fn diagonal_of(
     use ellipsoid_core::{Model, ModelParams, Preprocess, Thresholds};
     let p = model.params();
     let n = model.n();
-    let alarm = crate::threshold::chi_square(n, alpha) as f32;
+    let alarm = crate::stats::threshold::chi_square(n, alpha) as f32;
     let thresholds = Thresholds {
         alarm,
         clear: alarm * (p.thresholds.clear / p.thresholds.alarm),
@@ -164,109 +163,4 @@ pub fn diagonal_of(
         Some(Err(e)) => Err(anyhow::anyhow!("the per-feature model is invalid: {e}")),
         None => Err(anyhow::anyhow!("{n} features: no model of that size")),
     }
-}
-
-/// Run `evaluate`.
-pub fn run(a: &EvaluateArgs) -> Result<()> {
-    let loaded = load_model(&a.model)?;
-    let rate = a
-        .rate_hz
-        .or(loaded.card.as_ref().map(|c| c.rate_hz))
-        .unwrap_or(1.0);
-    anyhow::ensure!(
-        rate.is_finite() && rate > 0.0,
-        "--rate-hz must be a positive number of readings a second"
-    );
-    let scored = score_labelled(
-        loaded.model.as_ref(),
-        &loaded.features,
-        &a.model.input,
-        &a.label_column,
-        a.timestamp.clone(),
-        a.delimiter,
-        a.quiet,
-    )?;
-    let eval = scored.evaluate(rate);
-    if let Some(path) = &a.report {
-        let p = loaded.model.params();
-        let d2 = scored.d2();
-        let alpha = loaded.card.as_ref().map_or_else(
-            || {
-                crate::threshold::chi_square_tail(
-                    loaded.features.len(),
-                    f64::from(p.thresholds.alarm),
-                )
-            },
-            |c| c.alpha,
-        );
-        let (diag_thr, diag_model) = diagonal_of(loaded.model.as_ref(), alpha)?;
-        let diag = score_labelled(
-            diag_model.as_ref(),
-            &loaded.features,
-            &a.model.input,
-            &a.label_column,
-            a.timestamp.clone(),
-            a.delimiter,
-            true,
-        )?;
-        let data = report::ReportData {
-            title: format!("Ellipsoid evaluation of {}", a.model.input.display()),
-            subtitle: format!(
-                "model {} ({} features), {} readings at {} Hz",
-                a.model.model.display(),
-                loaded.features.len(),
-                scored.rows.len(),
-                rate
-            ),
-            features: loaded.features.clone(),
-            summary: Vec::new(),
-            d2: d2.clone(),
-            rate_hz: rate,
-            alarm_threshold: f64::from(p.thresholds.alarm),
-            clear_threshold: f64::from(p.thresholds.clear),
-            alarm: scored.alarm(),
-            labels: Some(scored.labels.clone()),
-            episodes: metrics::label_events(&scored.labels)
-                .into_iter()
-                .enumerate()
-                .map(|(i, (s, e))| (format!("event {}", i + 1), s, e))
-                .collect(),
-            baseline_d2: d2
-                .iter()
-                .zip(&scored.labels)
-                .filter(|(_, l)| !**l)
-                .filter_map(|(d, _)| d.map(f64::from))
-                .collect(),
-            qq: qq_points(&d2, &scored.labels, loaded.features.len()),
-            corr: model_correlation(loaded.model.as_ref()),
-            top_alarms: top_alarms(&scored.rows, 8),
-            diagonal: Some(report::DiagonalComparison {
-                d2_diag: diag.d2(),
-                threshold_diag: f64::from(diag_thr.alarm),
-                alarm_diag: diag.alarm(),
-                notes: vec![format!(
-                    "per-feature model: the same standardisation and policy with the correlations \
-                     left out, thresholded at the chi-square({}) quantile for α = {alpha:.3e}",
-                    loaded.features.len()
-                )],
-            }),
-            ..Default::default()
-        };
-        let html = report::render(&data)?;
-        output::write_bytes(path, html.as_bytes())?;
-    }
-    if a.json {
-        println!("{}", serde_json::to_string_pretty(&eval)?);
-    } else {
-        println!(
-            "Evaluated {} with {}:",
-            a.model.input.display(),
-            a.model.model.display()
-        );
-        print!("{eval}");
-        if let Some(path) = &a.report {
-            println!("Wrote {}.", path.display());
-        }
-    }
-    Ok(())
 }

@@ -1,0 +1,166 @@
+//! `ellipsoid fit`: from a baseline file to a defended threshold and a flashable blob.
+
+use std::path::PathBuf;
+
+use anyhow::Result;
+use clap::Args;
+use ellipsoid_core::AlarmPolicy;
+
+use crate::commands::common::CsvArgs;
+use crate::data::card::ModelCard;
+use crate::data::output;
+use crate::fit::Shrinkage;
+use crate::pipeline::summary::{report_data, summary_json, summary_text};
+use crate::pipeline::train::{check_output_paths, train, write_outputs, TrainSpec};
+use crate::report;
+use crate::stats::threshold::Method;
+
+/// Covariance estimator.
+#[derive(Debug, Clone, Copy, PartialEq, clap::ValueEnum)]
+pub enum ShrinkArg {
+    /// The plain sample covariance.
+    None,
+    /// Ledoit–Wolf (2004) shrinkage towards a scaled identity.
+    LedoitWolf,
+    /// Add `--loading` times the mean variance to the diagonal.
+    Diagonal,
+}
+
+/// Options of `fit`.
+#[derive(Debug, Clone, Args)]
+pub struct FitArgs {
+    /// Baseline CSV of healthy operation, one reading a row.
+    pub baseline: PathBuf,
+    /// Where to write the model blob; its model card goes beside it (`.json`).
+    #[arg(long, short, value_name = "FILE")]
+    pub out: PathBuf,
+    #[command(flatten)]
+    pub csv: CsvArgs,
+    /// Take the natural log of this positive, right-skewed column first (repeatable).
+    #[arg(long = "log", value_name = "COLUMN")]
+    pub log_columns: Vec<String>,
+    /// Covariance estimator.
+    #[arg(long, value_enum, default_value = "none")]
+    pub shrinkage: ShrinkArg,
+    /// Diagonal loading, relative to the mean variance (with `--shrinkage diagonal`).
+    #[arg(long, default_value_t = 0.01, value_name = "LAMBDA")]
+    pub loading: f64,
+    /// FAST-MCD robust fit for a baseline with some bad data; the rows it sets aside are reported.
+    #[arg(long)]
+    pub robust: bool,
+    /// Hold out this fraction of the baseline, from its end (time order), to check the threshold.
+    #[arg(long, default_value_t = 0.2, value_name = "FRACTION")]
+    pub holdout: f64,
+    /// How to choose the alarm threshold.
+    #[arg(long, value_enum, default_value = "chi-square")]
+    pub threshold: Method,
+    /// Target false alarms a day, per reading (before the raise-after debounce).
+    #[arg(
+        long,
+        default_value_t = 1.0,
+        value_name = "COUNT",
+        conflicts_with = "alpha"
+    )]
+    pub alarms_per_day: f64,
+    /// Readings a second, for the per-day figures.
+    #[arg(long, default_value_t = 1.0, value_name = "HZ")]
+    pub rate_hz: f64,
+    /// Target false-alarm probability per reading, instead of `--alarms-per-day`.
+    #[arg(long, value_name = "P")]
+    pub alpha: Option<f64>,
+    /// Labelled CSV with faults, for `--threshold f1` (and reported with the others).
+    #[arg(long, value_name = "FILE")]
+    pub validation: Option<PathBuf>,
+    /// Label column of the validation file (1 = anomaly).
+    #[arg(long, default_value = "label", value_name = "NAME")]
+    pub label_column: String,
+    /// Raise after this many consecutive readings above the threshold.
+    #[arg(long, default_value_t = 3, value_name = "K")]
+    pub raise_after: u16,
+    /// Clear after this many consecutive readings below the clear threshold.
+    #[arg(long, default_value_t = 10, value_name = "M")]
+    pub clear_after: u16,
+    /// The clear threshold as a fraction of the alarm threshold (hysteresis).
+    #[arg(long, default_value_t = 0.75, value_name = "FRACTION")]
+    pub clear_fraction: f64,
+    /// Latch the alarm: only an explicit reset on the device clears it.
+    #[arg(long)]
+    pub latch: bool,
+    /// Model identifier stored in the blob (default: derived from the fitted statistics).
+    #[arg(long, value_name = "ID")]
+    pub model_id: Option<u32>,
+    /// Sequence number: of two valid slots the device takes the higher.
+    #[arg(long, default_value_t = 1, value_name = "N")]
+    pub sequence: u32,
+    /// Training time stored in the blob, Unix seconds (default: now).
+    #[arg(long, value_name = "SECONDS")]
+    pub trained_at: Option<u64>,
+    /// Worker threads for the fit (default: all cores).
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Also write an HTML report here.
+    #[arg(long, value_name = "FILE")]
+    pub report: Option<PathBuf>,
+    /// Print the summary as JSON.
+    #[arg(long)]
+    pub json: bool,
+}
+
+impl FitArgs {
+    /// The training settings these arguments give.
+    pub fn spec(&self) -> TrainSpec {
+        TrainSpec {
+            baseline: self.baseline.clone(),
+            csv: self.csv.options(None, false),
+            log_columns: self.log_columns.clone(),
+            shrinkage: match self.shrinkage {
+                ShrinkArg::None => Shrinkage::None,
+                ShrinkArg::LedoitWolf => Shrinkage::LedoitWolf,
+                ShrinkArg::Diagonal => Shrinkage::Diagonal(self.loading),
+            },
+            robust: self.robust,
+            holdout: self.holdout,
+            threshold: self.threshold,
+            alarms_per_day: self.alarms_per_day,
+            rate_hz: self.rate_hz,
+            alpha: self.alpha,
+            validation: self.validation.clone(),
+            label_column: self.label_column.clone(),
+            policy: AlarmPolicy {
+                raise_after: self.raise_after,
+                clear_after: self.clear_after,
+                latch: self.latch,
+            },
+            clear_fraction: self.clear_fraction,
+            model_id: self.model_id,
+            sequence: self.sequence,
+            trained_at: self.trained_at,
+            threads: self.threads,
+        }
+    }
+}
+
+/// Run `fit`.
+pub fn run(a: &FitArgs) -> Result<()> {
+    check_output_paths(&a.out, a.report.as_deref())?;
+    let t = train(&a.spec())?;
+    write_outputs(&t, &a.out)?;
+    if let Some(path) = &a.report {
+        let html = report::render(&report_data(&t))?;
+        output::write_bytes(path, html.as_bytes())?;
+    }
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&summary_json(&t))?);
+    } else {
+        print!("{}", summary_text(&t));
+        println!(
+            "Wrote {} and {}{}.",
+            a.out.display(),
+            ModelCard::path_for(&a.out).display(),
+            a.report
+                .as_ref()
+                .map_or(String::new(), |r| format!(" and {}", r.display()))
+        );
+    }
+    Ok(())
+}

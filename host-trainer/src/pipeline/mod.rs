@@ -1,0 +1,7 @@
+//! The work the commands share, as functions that take settings and return values: training a
+//! model ([`train`]), what a fit tells ([`summary`]) and scoring a labelled file ([`evaluate`]).
+//! Nothing here parses a command line or prints.
+
+pub mod evaluate;
+pub mod summary;
+pub mod train;

@@ -1,0 +1,445 @@
+//! What `fit` tells: the text summary, the JSON summary and the data of the HTML report.
+
+use std::fmt::Write as _;
+
+use ellipsoid_core::{AlarmMachine, Scored, Verdict};
+
+use crate::pipeline::train::{method_name, Trained, ROBUST_SHARE_WARN};
+use crate::report;
+use crate::stats::threshold::{self, Method, SECONDS_PER_DAY};
+
+/// A square matrix with numbered columns (the rows carry the names), so wide names stay readable.
+fn fmt_matrix(s: &mut String, names: &[String], m: &[f64], digits: usize) {
+    let n = names.len();
+    let name_w = names.iter().map(|x| x.len()).max().unwrap_or(4) + 5;
+    let w = digits + 4;
+    let _ = write!(s, "    {:name_w$}", "");
+    for j in 1..=n {
+        let _ = write!(s, " {:>w$}", format!("[{j}]"));
+    }
+    s.push('\n');
+    for (i, (name, row)) in names.iter().zip(m.chunks(n.max(1))).enumerate() {
+        let label = format!("[{}] {name}", i + 1);
+        let _ = write!(s, "    {label:name_w$}");
+        for v in row {
+            let _ = write!(s, " {v:>w$.digits$}");
+        }
+        s.push('\n');
+    }
+}
+
+/// A p-value for people: below what f64 can resolve next to 1, say so instead of printing 0.
+fn fmt_p(p: f64) -> String {
+    if p < 1e-16 {
+        "p < 1e-16".into()
+    } else {
+        format!("p = {p:.2e}")
+    }
+}
+
+/// The human-readable summary of a fit, section by section.
+pub fn summary_text(t: &Trained) -> String {
+    let mut s = String::new();
+    rows_section(&mut s, t);
+    features_section(&mut s, t);
+    diagnostics_section(&mut s, t);
+    threshold_section(&mut s, t);
+    holdout_section(&mut s, t);
+    blob_section(&mut s, t);
+    s
+}
+
+/// Rows used, skipped and held out; warnings; the estimator.
+fn rows_section(s: &mut String, t: &Trained) {
+    let f = &t.fitted;
+    let n = f.features.len();
+    let _ = writeln!(
+        s,
+        "Fitted {} features from {}: {} rows used, {} skipped, {} held out.",
+        n, t.baseline, f.rows_used, f.rows_skipped, f.rows_holdout
+    );
+    for r in &f.skipped_reasons {
+        let _ = writeln!(s, "  skipped: {r}");
+    }
+    for w in &f.warnings {
+        let _ = writeln!(s, "  warning: {w}");
+    }
+    if let Some((method, intensity)) = &f.shrinkage {
+        let _ = writeln!(s, "  covariance: {method}, intensity {intensity:.4}");
+    }
+    if let Some(r) = &f.robust {
+        let _ = writeln!(
+            s,
+            "  robust fit (FAST-MCD): {} rows set aside as outliers{}",
+            r.set_aside_lines.len(),
+            if r.set_aside_lines.is_empty() {
+                String::new()
+            } else {
+                let shown: Vec<String> = r
+                    .set_aside_lines
+                    .iter()
+                    .take(12)
+                    .map(|l| l.to_string())
+                    .collect();
+                format!(
+                    " (lines {}{})",
+                    shown.join(", "),
+                    if r.set_aside_lines.len() > 12 {
+                        ", …"
+                    } else {
+                        ""
+                    }
+                )
+            }
+        );
+        let total = r.rows_kept + r.set_aside_lines.len() as u64;
+        let share = r.set_aside_lines.len() as f64 / total.max(1) as f64;
+        // On clean Gaussian data the 0.975 reweighting sets aside about 2.5 % of the rows.
+        if share > ROBUST_SHARE_WARN {
+            let _ = writeln!(
+                s,
+                "    that is {:.0} % of the rows, far more than the ~2.5 % a clean Gaussian baseline loses: \
+                 the baseline is probably not elliptical (several operating modes?), and a robust fit \
+                 of it may not describe healthy operation",
+                100.0 * share
+            );
+        }
+    }
+}
+
+/// Per-feature statistics and the correlation matrix.
+fn features_section(s: &mut String, t: &Trained) {
+    let f = &t.fitted;
+    let n = f.features.len();
+    s.push('\n');
+    let w = f.features.iter().map(|x| x.len()).max().unwrap_or(8).max(8);
+    let _ = writeln!(
+        s,
+        "  {:<w$}  {:>5}  {:>14}  {:>12}  {:>9}  {:>9}",
+        "feature", "log", "mean", "sd", "skewness", "ex.kurt"
+    );
+    for i in 0..n {
+        let _ = writeln!(
+            s,
+            "  {:<w$}  {:>5}  {:>14.6}  {:>12.6}  {:>9.3}  {:>9.3}",
+            f.features[i],
+            if (f.log_mask >> i) & 1 == 1 {
+                "yes"
+            } else {
+                "no"
+            },
+            f.mean[i],
+            f.sd[i],
+            f.diagnostics.skewness.get(i).copied().unwrap_or(f64::NAN),
+            f.diagnostics
+                .excess_kurtosis
+                .get(i)
+                .copied()
+                .unwrap_or(f64::NAN),
+        );
+    }
+    let _ = writeln!(s, "\n  correlation matrix:");
+    fmt_matrix(s, &f.features, &f.corr, 3);
+    let _ = writeln!(
+        s,
+        "  condition number of the correlation matrix: {:.1}",
+        f.condition_number
+    );
+}
+
+/// Gaussianity checks, log suggestions and the f32-against-f64 check.
+fn diagnostics_section(s: &mut String, t: &Trained) {
+    let f = &t.fitted;
+    let d = &f.diagnostics;
+    let _ = writeln!(
+        s,
+        "  Mardia's tests: skewness statistic {:.1} over {} rows, {}; kurtosis z = {:.2} over {} rows, {}",
+        d.mardia_skewness.statistic,
+        d.mardia_skewness_rows,
+        fmt_p(d.mardia_skewness.p_value),
+        d.mardia_kurtosis.df_or_z,
+        d.rows,
+        fmt_p(d.mardia_kurtosis.p_value)
+    );
+    if d.mardia_skewness.p_value < 0.01 || d.mardia_kurtosis.p_value < 0.01 {
+        let _ = writeln!(
+            s,
+            "    the baseline is not multivariate normal, so the chi-square threshold's false-alarm \
+             rate is approximate: check it against the hold-out below"
+        );
+    }
+    for name in &d.log_suggestions {
+        let _ = writeln!(
+            s,
+            "  suggestion: `{name}` is positive and right-skewed; try --log {name}"
+        );
+    }
+    let _ = writeln!(
+        s,
+        "  worst relative difference, core f32 d² vs f64 d², over the baseline rows checked: {:.2e}",
+        f.f32_vs_f64_worst_rel
+    );
+}
+
+/// Every candidate threshold, the chosen one, the policy and the promised rate.
+fn threshold_section(s: &mut String, t: &Trained) {
+    let f = &t.fitted;
+    let n = f.features.len();
+    s.push('\n');
+    let c = &t.candidates;
+    let _ = writeln!(
+        s,
+        "Threshold on d² (target: α = {:.3e} per reading = {:.3} false readings a day at {} Hz):",
+        c.alpha,
+        c.alpha * SECONDS_PER_DAY * t.rate_hz,
+        t.rate_hz
+    );
+    let mark = |m: Method| if m == t.method { "  <- chosen" } else { "" };
+    let _ = writeln!(
+        s,
+        "  chi-square({n}) quantile at 1 − α:   {:>10.4}{}",
+        c.chi_square,
+        mark(Method::ChiSquare)
+    );
+    match &c.empirical {
+        Some(e) => {
+            let _ = writeln!(
+                s,
+                "  empirical hold-out quantile:     {:>10.4}  ({} of {} held-out readings above{}){}",
+                e.value,
+                e.above,
+                e.n,
+                if e.beyond_data {
+                    "; α·n < 1, so this is the largest value seen"
+                } else {
+                    ""
+                },
+                mark(Method::Empirical)
+            );
+        }
+        None => {
+            let _ = writeln!(s, "  empirical hold-out quantile:     (no hold-out)");
+        }
+    }
+    match &c.f1 {
+        Some((thr, f1)) => {
+            let _ = writeln!(
+                s,
+                "  F1-optimal on validation:        {:>10.4}  (F1 {:.3}){}",
+                thr,
+                f1,
+                mark(Method::F1)
+            );
+        }
+        None => {
+            let _ = writeln!(
+                s,
+                "  F1-optimal on validation:        (no --validation file)"
+            );
+        }
+    }
+    let chosen = f64::from(t.thresholds.alarm);
+    let _ = writeln!(
+        s,
+        "  alarm when d² > {:.4} for {} reading(s) in a row; clear below {:.4} for {}{}",
+        chosen,
+        t.policy.raise_after,
+        t.thresholds.clear,
+        t.policy.clear_after,
+        if t.policy.latch { "; latched" } else { "" }
+    );
+    let tail = threshold::chi_square_tail(n, chosen);
+    let _ = writeln!(
+        s,
+        "  expected under the Gaussian model: {:.3e} of readings above, {:.3} a day at {} Hz (before the raise-after debounce)",
+        tail,
+        tail * SECONDS_PER_DAY * t.rate_hz,
+        t.rate_hz
+    );
+}
+
+/// The held-out baseline replayed through the alarm state machine.
+fn holdout_section(s: &mut String, t: &Trained) {
+    match &t.holdout {
+        Some(h) => {
+            let _ = writeln!(
+                s,
+                "  held-out baseline replayed through the alarm state machine: {} readings ({:.1} h), {} above ({:.3e}), {} alarms raised = {:.2} false alarms a day (95 % upper bound {:.1})",
+                h.readings, h.hours, h.readings_above, h.fraction_above, h.alarms_raised, h.false_alarms_per_day, h.false_alarms_per_day_upper95
+            );
+            if !h.alarm_lines.is_empty() {
+                let shown: Vec<String> = h.alarm_lines.iter().map(u64::to_string).collect();
+                let _ = writeln!(
+                    s,
+                    "    false alarms raised at lines {}{} of {}",
+                    shown.join(", "),
+                    if h.alarms_raised as usize > h.alarm_lines.len() {
+                        ", …"
+                    } else {
+                        ""
+                    },
+                    t.baseline
+                );
+            }
+        }
+        None => {
+            let _ = writeln!(
+                s,
+                "  no hold-out: the policy's real false-alarm rate is not measured (give --holdout)"
+            );
+        }
+    }
+    if t.method == Method::Empirical && t.holdout.is_some() {
+        let _ = writeln!(
+            s,
+            "    (the empirical threshold was taken from these same held-out rows, so this check is not \
+             independent and flatters the threshold: judge it on a later log with `evaluate`)"
+        );
+    }
+}
+
+/// The blob's size and identity.
+fn blob_section(s: &mut String, t: &Trained) {
+    let _ = writeln!(
+        s,
+        "\nBlob: {} bytes (model id {:#010x}, sequence {}); decoded on the device it takes {} bytes of RAM.",
+        t.blob.len(),
+        t.model.params().meta.model_id,
+        t.model.params().meta.sequence,
+        t.model.ram_bytes()
+    );
+}
+
+/// The JSON summary.
+pub fn summary_json(t: &Trained) -> serde_json::Value {
+    let f = &t.fitted;
+    serde_json::json!({
+        "baseline": t.baseline,
+        "features": f.features,
+        "log_features": t.card.log_features,
+        "rows_used": f.rows_used,
+        "rows_skipped": f.rows_skipped,
+        "skipped_reasons": f.skipped_reasons,
+        "rows_holdout": f.rows_holdout,
+        "mean": f.mean,
+        "sd": f.sd,
+        "covariance": f.cov,
+        "correlation": f.corr,
+        "condition_number": f.condition_number,
+        "shrinkage": f.shrinkage,
+        "robust_set_aside_lines": f.robust.as_ref().map(|r| r.set_aside_lines.clone()),
+        "diagnostics": f.diagnostics,
+        "f32_vs_f64_worst_relative_difference": f.f32_vs_f64_worst_rel,
+        "warnings": f.warnings,
+        "threshold": {
+            "method": method_name(t.method),
+            "alarm": t.thresholds.alarm,
+            "clear": t.thresholds.clear,
+            "candidates": t.candidates,
+            "expected_fraction_above": threshold::chi_square_tail(f.features.len(), f64::from(t.thresholds.alarm)),
+        },
+        "policy": {
+            "raise_after": t.policy.raise_after,
+            "clear_after": t.policy.clear_after,
+            "latch": t.policy.latch,
+        },
+        "rate_hz": t.rate_hz,
+        "holdout_check": t.holdout,
+        "blob_bytes": t.blob.len(),
+        "model_id": t.model.params().meta.model_id,
+        "sequence": t.model.params().meta.sequence,
+        "decoded_model_ram_bytes": t.model.ram_bytes(),
+    })
+}
+
+/// The fit's HTML report.
+pub fn report_data(t: &Trained) -> report::ReportData {
+    let f = &t.fitted;
+    let c = &t.candidates;
+    let mut others = vec![("chi-square".to_string(), c.chi_square)];
+    if let Some(e) = &c.empirical {
+        others.push(("empirical".to_string(), e.value));
+    }
+    if let Some((thr, _)) = &c.f1 {
+        others.push(("F1-optimal".to_string(), *thr));
+    }
+    let mut machine = AlarmMachine::new(t.thresholds, t.policy);
+    let alarm: Vec<bool> = f
+        .holdout_d2
+        .iter()
+        .map(|v| {
+            machine
+                .update(&Ok(Scored {
+                    d2: *v,
+                    verdict: if *v > t.thresholds.alarm {
+                        Verdict::Above
+                    } else {
+                        Verdict::Below
+                    },
+                }))
+                .alarm
+        })
+        .collect();
+    report::ReportData {
+        title: format!("Ellipsoid model of {}", t.baseline),
+        subtitle: format!(
+            "{} features, {} rows used, threshold by {}",
+            f.features.len(),
+            f.rows_used,
+            method_name(t.method)
+        ),
+        features: f.features.clone(),
+        summary: vec![
+            ("rows used".into(), f.rows_used.to_string()),
+            ("rows skipped".into(), f.rows_skipped.to_string()),
+            ("rows held out".into(), f.rows_holdout.to_string()),
+            (
+                "condition number".into(),
+                format!("{:.1}", f.condition_number),
+            ),
+            (
+                "alarm threshold (d²)".into(),
+                format!("{:.4}", t.thresholds.alarm),
+            ),
+            (
+                "clear threshold (d²)".into(),
+                format!("{:.4}", t.thresholds.clear),
+            ),
+            (
+                "policy".into(),
+                format!(
+                    "raise after {}, clear after {}{}",
+                    t.policy.raise_after,
+                    t.policy.clear_after,
+                    if t.policy.latch { ", latched" } else { "" }
+                ),
+            ),
+            (
+                "held-out false alarms a day".into(),
+                t.holdout.as_ref().map_or("(no hold-out)".into(), |h| {
+                    format!("{:.2}", h.false_alarms_per_day)
+                }),
+            ),
+            ("blob".into(), format!("{} bytes", t.blob.len())),
+        ],
+        d2: f
+            .holdout_d2
+            .iter()
+            .map(|v| v.is_finite().then_some(*v))
+            .collect(),
+        rate_hz: t.rate_hz,
+        alarm_threshold: f64::from(t.thresholds.alarm),
+        clear_threshold: f64::from(t.thresholds.clear),
+        other_thresholds: others,
+        alarm,
+        baseline_d2: f
+            .holdout_d2
+            .iter()
+            .filter(|v| v.is_finite())
+            .map(|v| f64::from(*v))
+            .collect(),
+        qq: f.diagnostics.qq.clone(),
+        corr: f.corr.clone(),
+        ..Default::default()
+    }
+}
