@@ -19,9 +19,9 @@
 //!  ellipsoid-core the blob, validation, scoring, alarm state machine (no_std)
 //! ```
 //!
-//! A layer may use the layers below it and its peers on the same line only where no circle forms:
-//! `fit` uses `stats`, `data` and `device`; `report` uses `stats`; the bottom line's three
-//! do not use each other, except that `data` and `device` share nothing with `stats`.
+//! A module may use its own layer and the layers below it, never one above it nor a peer on the
+//! same line: `fit` uses `stats`, `data` and `device` (for `with_dim!`), not `report`; `stats`,
+//! `data` and `device` use only the core.
 //!
 //! Where to look:
 //!

@@ -68,7 +68,10 @@ fn layers_point_down() {
     let src = Path::new(env!("CARGO_MANIFEST_DIR")).join("src");
     let mut files = Vec::new();
     sources(&src, &mut files);
-    assert!(files.len() > 20, "expected the trainer's sources in {src:?}");
+    assert!(
+        files.len() > 20,
+        "expected the trainer's sources in {src:?}"
+    );
     let mut wrong = Vec::new();
     let mut checked = 0;
     for file in &files {
@@ -79,8 +82,7 @@ fn layers_point_down() {
         if own == "lib" || own == "main" {
             continue;
         }
-        let own_h =
-            height(own).unwrap_or_else(|| panic!("{rel:?}: module `{own}` is in no layer"));
+        let own_h = height(own).unwrap_or_else(|| panic!("{rel:?}: module `{own}` is in no layer"));
         let text = fs::read_to_string(file).expect("read source");
         for name in uses(&text) {
             let target = MACROS
@@ -98,7 +100,10 @@ fn layers_point_down() {
             }
         }
     }
-    assert!(checked > 50, "only {checked} crate paths found: is the scan broken?");
+    assert!(
+        checked > 50,
+        "only {checked} crate paths found: is the scan broken?"
+    );
     assert!(
         wrong.is_empty(),
         "imports that point up or sideways:\n{}",

@@ -7,7 +7,7 @@
 //! 2. If [`FitOptions::holdout`] is above zero, count the lines with `memchr` (cheap) and set the
 //!    last `holdout` fraction of the data lines aside, in time order, as the held-out tail.
 //! 3. Split the training part into [`FitOptions::threads`] byte ranges on line boundaries and
-//!    read each range in its own thread into its own [`Moments`] (Welford), then merge them (Chan
+//!    read each range in its own thread into its own [`Moments`](crate::stats::moments::Moments) (Welford), then merge them (Chan
 //!    et al.). In the plain path no row is stored: memory does not grow with the row count. Each
 //!    thread also keeps a bottom-k sample of at most [`SAMPLE_ROWS`] rows, keyed by a hash of the
 //!    row's byte offset, so the merged sample is the same whatever the number of threads.
@@ -18,7 +18,7 @@
 //! 6. Factor the correlation matrix `R = L Lᵀ` (nalgebra's Cholesky) and keep `W = L⁻¹`.
 //!    The core's parameters are then: offset = mean, scale = 1/sd, mean in standardised space = 0,
 //!    and `w = W`. The device's `f32` arithmetic thus works on standardised numbers of order 1.
-//! 7. Score the sample through the core's `f32` [`Model::score`] and compare with the `f64`
+//! 7. Score the sample through the core's `f32` [`Model::score`](ellipsoid_core::Model::score) and compare with the `f64`
 //!    reference [`Fitted::d2_f64`]; score every held-out row through the core.
 //!
 //! Shrinkage is applied to the correlation matrix, so it does not depend on the units of the

@@ -9,7 +9,7 @@ use super::cell::{lossy, trim};
 use super::{CsvOptions, IngestError, TIMESTAMP_NAMES};
 
 /// What the header of a file says: the delimiter, how many fields a row has, and which field
-/// plays which role. Shared by every [`Reader`] of the file.
+/// plays which role. Shared by every [`Reader`](super::Reader) of the file.
 #[derive(Clone, Debug)]
 pub struct Layout {
     /// The file's name as given, for messages.

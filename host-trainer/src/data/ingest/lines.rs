@@ -54,7 +54,7 @@ pub fn nth_line_start(path: &Path, start: u64, n: u64) -> io::Result<u64> {
 }
 
 /// Cut `start..end` into at most `parts` byte ranges that begin and end on line boundaries, for
-/// parallel readers ([`Reader::range`]): `parts + 1` or fewer increasing offsets from `start` to `end`, each (but the ends) just after a `\n`.
+/// parallel readers ([`Reader::range`](super::Reader::range)): `parts + 1` or fewer increasing offsets from `start` to `end`, each (but the ends) just after a `\n`.
 pub fn split_ranges(path: &Path, start: u64, end: u64, parts: usize) -> io::Result<Vec<u64>> {
     let mut bounds = vec![start];
     if parts > 1 && end > start {
