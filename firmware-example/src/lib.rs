@@ -9,15 +9,15 @@
 //! * [`node`]: the application itself, boot and the scoring loop, and its report.
 //!
 //! What ties it to a board is one module, `board` (here the emulated Arm MPS2 AN386, built with
-//! the feature `mps2-an386`), and the memory map `memory.x`. The binary `ellipsoid-node` (in
-//! `src/main.rs`) only joins the two.
+//! the feature `mps2-an386`), and the memory map `boards/mps2_an386/memory.x`. The binary
+//! `ellipsoid-node` (in `src/main.rs`) only joins the two.
 //!
 //! # Memory layout
 //!
-//! `memory.x` reserves, apart from the firmware's own flash, two model slots (`MODEL_A`, `MODEL_B`)
-//! and, on the emulator only, a region for the reading table. Their addresses are linker symbols
-//! (`_model_a_start`, `_model_b_start`, `_readings_start`), so `arm-none-eabi-nm` on the image tells
-//! where to flash a blob. `arm-none-eabi-size -A` gives the sections' sizes.
+//! The memory map reserves, apart from the firmware's own flash, two model slots (`MODEL_A`,
+//! `MODEL_B`) and, on the emulator only, a region for the reading table. Their addresses are
+//! linker symbols (`_model_a_start`, `_model_b_start`, `_readings_start`), so `arm-none-eabi-nm` on
+//! the image tells where to flash a blob. `arm-none-eabi-size -A` gives the sections' sizes.
 #![cfg_attr(not(test), no_std)]
 #![deny(missing_docs)]
 

@@ -1,17 +1,19 @@
 //! The board: the emulated Arm MPS2 AN386 (Cortex-M4F), as `qemu-system-arm -machine mps2-an386`.
 //!
-//! Everything that is specific to a board lives in this file (and in `memory.x`):
+//! Everything that is specific to a board lives in this file (and in its memory map,
+//! `boards/mps2_an386/memory.x`):
 //!
 //! * the two output pins: bits 0 and 1 of the FPGA I/O block's LED register (`0x4002_8000`),
 //!   alarm and fault;
-//! * where the model slots and the reading table are (linker symbols from `memory.x`);
+//! * where the model slots and the reading table are (linker symbols from the memory map);
 //! * the console: ARM semihosting to the host's standard output, a line at a time;
 //! * the end of a run: semihosting exit, which ends the emulator with a status;
 //! * a tick counter (SysTick on the core clock) and a stack painter for the figures in the README.
 //!
 //! Porting to a real board means writing this file again with that board's HAL: its GPIO pins
 //! (they already implement embedded-hal's `OutputPin`), a UART or RTT for the console, an ADC or
-//! I²C/SPI sensor as a [`crate::source::ReadingSource`], and its flash in `memory.x`.
+//! I²C/SPI sensor as a [`crate::source::ReadingSource`], and its flash in
+//! `boards/<board>/memory.x`.
 
 use core::convert::Infallible;
 use core::fmt;
@@ -38,7 +40,7 @@ extern "C" {
 }
 
 fn region(start: *const u8, len: *const u8) -> &'static [u8] {
-    // SAFETY: `memory.x` reserves these regions for data only, apart from every section of the
+    // SAFETY: the memory map reserves these regions for data only, apart from every section of the
     // image; the emulator's loader (or a flash programmer) writes them before the core starts,
     // and nothing writes them while the firmware runs.
     unsafe { core::slice::from_raw_parts(start, len as usize) }
