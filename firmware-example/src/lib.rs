@@ -26,6 +26,8 @@
 pub mod board;
 #[cfg(test)]
 mod fixtures;
+#[cfg(all(feature = "cortex-m", target_os = "none"))]
+pub mod measure;
 pub mod node;
 pub mod pins;
 pub mod slots;

@@ -5,10 +5,10 @@
 use core::fmt::Write;
 
 use cortex_m_rt::entry;
-use ellipsoid_firmware_example::board;
 use ellipsoid_firmware_example::node::Node;
 use ellipsoid_firmware_example::pins::{ActiveLevel, Line};
 use ellipsoid_firmware_example::source::Table;
+use ellipsoid_firmware_example::{board, measure};
 
 /// Features per reading: the demo booster pump's five sensors. A blob for another N is refused
 /// at boot (and reported), like any other invalid slot.
@@ -28,9 +28,9 @@ fn main() -> ! {
     let ok = match Table::<N>::new(board::readings()) {
         Ok(mut table) => {
             let _ = writeln!(out, "readings count={}", table.count());
-            board::paint_stack();
+            measure::paint_stack();
             node.run(&mut table, &mut out);
-            let _ = writeln!(out, "stack peak_bytes={}", board::stack_peak());
+            let _ = writeln!(out, "stack peak_bytes={}", measure::stack_peak());
             true
         }
         Err(e) => {

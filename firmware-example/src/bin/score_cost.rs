@@ -14,7 +14,8 @@ use core::hint::black_box;
 
 use cortex_m_rt::entry;
 use ellipsoid_core::{AlarmPolicy, Model, ModelMeta, ModelParams, Preprocess, Thresholds};
-use ellipsoid_firmware_example::board::{self, Console, Ticks};
+use ellipsoid_firmware_example::board::{self, Console};
+use ellipsoid_firmware_example::measure::{self, Ticks};
 use ellipsoid_firmware_example::node;
 
 /// Scores per timed loop.
@@ -89,10 +90,10 @@ fn measure<const N: usize>(ticks: &Ticks, per_tick: f32, out: &mut Console) -> b
     }
     let t3 = ticks.now();
     black_box(sum);
-    let depth = board::stack_depth();
-    board::paint_stack();
+    let depth = measure::stack_depth();
+    measure::paint_stack();
     black_box(node::score(black_box(&model), black_box(&xs[0])).ok());
-    let stack = board::stack_peak().saturating_sub(depth);
+    let stack = measure::stack_peak().saturating_sub(depth);
     let per_score = Ticks::elapsed(t0, t1) as f32 * per_tick / REPS as f32;
     let overhead = Ticks::elapsed(t2, t3) as f32 * per_tick / REPS as f32;
     let floor = N * (N + 1) / 2 + 2 * N;
@@ -120,7 +121,7 @@ fn main() -> ! {
         board::exit(false)
     };
     let t0 = b.ticks.now();
-    board::spin(SPIN);
+    measure::spin(SPIN);
     let t1 = b.ticks.now();
     let cal = Ticks::elapsed(t0, t1);
     let per_tick = (2 * SPIN) as f32 / cal as f32;

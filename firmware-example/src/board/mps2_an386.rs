@@ -8,7 +8,6 @@
 //! * where the model slots and the reading table are (linker symbols from the memory map);
 //! * the console: ARM semihosting to the host's standard output, a line at a time;
 //! * the end of a run: semihosting exit, which ends the emulator with a status;
-//! * a tick counter (SysTick on the core clock) and a stack painter for the figures in the README.
 //!
 //! Porting to a real board means writing this file again with that board's HAL: its GPIO pins
 //! (they already implement embedded-hal's `OutputPin`), a UART or RTT for the console, an ADC or
@@ -19,10 +18,10 @@ use core::convert::Infallible;
 use core::fmt;
 use core::ptr::{addr_of, read_volatile, write_volatile};
 
-use cortex_m::peripheral::{syst::SystClkSource, SYST};
 use cortex_m_semihosting::{debug, hio};
 use embedded_hal::digital::{ErrorType, OutputPin};
 
+use crate::measure::Ticks;
 use crate::slots::Slot;
 
 /// The FPGA I/O block's LED0 register: two LEDs, bits 0 and 1.
@@ -35,8 +34,6 @@ extern "C" {
     static _model_b_len: u8;
     static _readings_start: u8;
     static _readings_len: u8;
-    static _stack_start: u32;
-    static _stack_end: u32;
 }
 
 fn region(start: *const u8, len: *const u8) -> &'static [u8] {
@@ -184,99 +181,6 @@ pub fn exit(ok: bool) -> ! {
     loop {
         cortex_m::asm::wfi();
     }
-}
-
-/// SysTick on the core clock, free-running over its full 24 bits.
-pub struct Ticks {
-    _syst: SYST,
-}
-
-impl Ticks {
-    fn new(mut syst: SYST) -> Self {
-        syst.set_clock_source(SystClkSource::Core);
-        syst.set_reload(0x00FF_FFFF);
-        syst.clear_current();
-        syst.enable_counter();
-        Self { _syst: syst }
-    }
-
-    /// The counter now. It counts down.
-    #[inline(always)]
-    pub fn now(&self) -> u32 {
-        SYST::get_current()
-    }
-
-    /// Ticks from `start` to `end` (two values of [`Ticks::now`]), for spans under 2²⁴ ticks.
-    pub const fn elapsed(start: u32, end: u32) -> u32 {
-        start.wrapping_sub(end) & 0x00FF_FFFF
-    }
-}
-
-/// A busy loop of exactly `2 · iterations` instructions (`subs`, `bne`), to calibrate [`Ticks`].
-#[inline(always)]
-pub fn spin(iterations: u32) {
-    if iterations == 0 {
-        return;
-    }
-    // SAFETY: a register-only loop; no memory, no stack.
-    unsafe {
-        core::arch::asm!(
-            "1:",
-            "subs {0}, #1",
-            "bne 1b",
-            inout(reg) iterations => _,
-            options(nomem, nostack),
-        );
-    }
-}
-
-const PAINT: u32 = 0x5EE5_5EE5;
-/// How far below the current stack pointer the painter goes (the stack's lowest possible use).
-const PAINT_WINDOW: usize = 64 * 1024;
-
-fn stack_bounds() -> (usize, usize) {
-    let (top, end) = (
-        addr_of!(_stack_start) as usize,
-        addr_of!(_stack_end) as usize,
-    );
-    let low = top.saturating_sub(PAINT_WINDOW).max(end);
-    (low, top)
-}
-
-/// How deep the stack is now, in bytes from its top.
-#[inline(always)]
-pub fn stack_depth() -> usize {
-    let (_, top) = stack_bounds();
-    top.saturating_sub(cortex_m::register::msp::read() as usize)
-}
-
-/// Fill the unused stack below the current stack pointer (down to 64 KiB below its top) with a
-/// pattern, so that [`stack_peak`] can tell how deep the stack went afterwards.
-#[inline(never)]
-pub fn paint_stack() {
-    let (low, _) = stack_bounds();
-    // Stay clear of this function's own frame.
-    let sp = (cortex_m::register::msp::read() as usize).saturating_sub(32) & !3;
-    let mut p = low;
-    while p < sp {
-        // SAFETY: [low, sp) is stack memory below the stack pointer, which nothing uses now
-        // (there are no interrupts).
-        unsafe { write_volatile(p as *mut u32, PAINT) };
-        p += 4;
-    }
-}
-
-/// The deepest the stack has gone since [`paint_stack`], in bytes from its top. A value of
-/// 64 KiB means the painted window was used up (the true peak may be higher).
-#[inline(never)]
-pub fn stack_peak() -> usize {
-    let (low, top) = stack_bounds();
-    let mut p = low;
-    // SAFETY: [low, top) is the stack region; reading it is harmless.
-    while p < top && unsafe { read_volatile(p as *const u32) } == PAINT {
-        p += 4;
-    }
-    top - p
 }
 
 #[panic_handler]
