@@ -1,28 +1,32 @@
-//! The board: the emulated Arm MPS2 AN386 (Cortex-M4F), as `qemu-system-arm -machine mps2-an386`.
+//! The emulated Arm MPS2 AN386 (Cortex-M4F), as `qemu-system-arm -machine mps2-an386`. Feature
+//! `mps2-an386`; memory map `boards/mps2_an386/memory.x`.
 //!
-//! Everything that is specific to a board lives in this file (and in its memory map,
-//! `boards/mps2_an386/memory.x`):
+//! Everything that is specific to this board lives in this file and its memory map:
 //!
 //! * the two output pins: bits 0 and 1 of the FPGA I/O block's LED register (`0x4002_8000`),
-//!   alarm and fault;
-//! * where the model slots and the reading table are (linker symbols from the memory map);
+//!   alarm and fault, both active-high; the register is read back at the end of a run;
+//! * where the model slots and the reading table are (linker symbols from the memory map); the
+//!   readings are a [`Table`] that the emulator's loader puts in memory;
 //! * the console: ARM semihosting to the host's standard output, a line at a time;
 //! * the end of a run: semihosting exit, which ends the emulator with a status;
+//! * its measurements: the stack painter of [`crate::measure`] around the scoring loop, and the
+//!   SysTick counter for the `score-cost` image.
 //!
-//! Porting to a real board means writing this file again with that board's HAL: its GPIO pins
-//! (they already implement embedded-hal's `OutputPin`), a UART or RTT for the console, an ADC or
-//! I²C/SPI sensor as a [`crate::source::ReadingSource`], and its flash in
-//! `boards/<board>/memory.x`.
+//! A port to another board writes a file like this one (see the README, "Porting to another
+//! board").
 
 use core::convert::Infallible;
-use core::fmt;
+use core::fmt::{self, Write};
 use core::ptr::{addr_of, read_volatile, write_volatile};
 
 use cortex_m_semihosting::{debug, hio};
 use embedded_hal::digital::{ErrorType, OutputPin};
 
-use crate::measure::Ticks;
+use crate::board::{Board, Parts};
+use crate::measure::{self, Ticks};
+use crate::pins::{ActiveLevel, Line};
 use crate::slots::Slot;
+use crate::source::{Table, TableError};
 
 /// The FPGA I/O block's LED0 register: two LEDs, bits 0 and 1.
 const FPGAIO_LED0: usize = 0x4002_8000;
@@ -44,7 +48,7 @@ fn region(start: *const u8, len: *const u8) -> &'static [u8] {
 }
 
 /// The two model slots, A and B.
-pub fn model_slots() -> [Slot<'static>; 2] {
+fn model_slots() -> [Slot<'static>; 2] {
     // Only the addresses of the linker symbols are taken, which needs no `unsafe`.
     let (a, al) = (addr_of!(_model_a_start), addr_of!(_model_a_len));
     let (b, bl) = (addr_of!(_model_b_start), addr_of!(_model_b_len));
@@ -61,7 +65,7 @@ pub fn model_slots() -> [Slot<'static>; 2] {
 }
 
 /// The region the reading table is loaded into.
-pub fn readings() -> &'static [u8] {
+fn reading_region() -> &'static [u8] {
     let (r, rl) = (addr_of!(_readings_start), addr_of!(_readings_len));
     region(r, rl)
 }
@@ -82,7 +86,7 @@ fn modify_leds(f: impl FnOnce(u32) -> u32) {
 }
 
 /// The LED register as the hardware holds it (bit 0 alarm, bit 1 fault; 1 = high).
-pub fn leds() -> u32 {
+fn leds() -> u32 {
     // SAFETY: see `modify_leds`.
     unsafe { read_volatile(FPGAIO_LED0 as *const u32) }
 }
@@ -105,24 +109,67 @@ impl OutputPin for Led {
     }
 }
 
-/// The board's peripherals that the application uses.
-pub struct Board {
-    /// The alarm pin: LED 0.
-    pub alarm: Led,
-    /// The fault pin: LED 1.
-    pub fault: Led,
+/// The board, apart from its two output lines.
+pub struct Mps2An386 {
+    /// The console.
+    pub console: Console,
     /// The tick counter.
     pub ticks: Ticks,
 }
 
-/// Take the peripherals. Returns `None` if called twice.
-pub fn take() -> Option<Board> {
-    let p = cortex_m::Peripherals::take()?;
-    Some(Board {
-        alarm: Led { mask: 1 << 0 },
-        fault: Led { mask: 1 << 1 },
-        ticks: Ticks::new(p.SYST),
-    })
+/// Take the board, once, at reset: LED 0 is the alarm line and LED 1 the fault line, both
+/// active-high. A second call reports it and ends the run.
+///
+/// Inlined into the image's entry, like [`crate::app::run`], and the console is built in place:
+/// the image keeps a single console on its stack.
+#[inline(always)]
+pub fn take() -> Parts<Mps2An386, Led, Led> {
+    let Some(p) = cortex_m::Peripherals::take() else {
+        let _ = writeln!(Console::new(), "peripherals already taken");
+        exit(false)
+    };
+    Parts {
+        board: Mps2An386 {
+            console: Console::new(),
+            ticks: Ticks::new(p.SYST),
+        },
+        alarm: Line::new(Led { mask: 1 << 0 }, ActiveLevel::High),
+        fault: Line::new(Led { mask: 1 << 1 }, ActiveLevel::High),
+    }
+}
+
+impl<const N: usize> Board<N> for Mps2An386 {
+    type Console = Console;
+    type Source = Table<'static, N>;
+    type SourceError = TableError;
+
+    fn console(&mut self) -> &mut Console {
+        &mut self.console
+    }
+
+    fn model_slots(&self) -> [Slot<'static>; 2] {
+        model_slots()
+    }
+
+    fn readings(&mut self) -> Result<Table<'static, N>, TableError> {
+        Table::new(reading_region())
+    }
+
+    fn start_measuring(&mut self) {
+        measure::paint_stack();
+    }
+
+    fn stack_peak(&self) -> Option<usize> {
+        Some(measure::stack_peak())
+    }
+
+    fn output_levels(&self) -> Option<u32> {
+        Some(leds())
+    }
+
+    fn finish(self, ok: bool) -> ! {
+        exit(ok)
+    }
 }
 
 /// The console: semihosting standard output, written a line at a time.
@@ -185,7 +232,6 @@ pub fn exit(ok: bool) -> ! {
 
 #[panic_handler]
 fn on_panic(info: &core::panic::PanicInfo<'_>) -> ! {
-    use fmt::Write;
     let mut out = Console::new();
     let _ = writeln!(out, "panic: {info}");
     exit(false)
