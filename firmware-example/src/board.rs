@@ -1,7 +1,7 @@
 //! What the application needs from a board, and the board this image is built for.
 //!
-//! A board gives the application four things, and nothing else in the crate knows which board it
-//! runs on:
+//! A board gives the application four things, and nothing else in the library knows which board
+//! it runs on:
 //!
 //! * the two output pins, alarm and fault, as embedded-hal 1.0 `OutputPin`s wrapped in
 //!   [`Line`]s (the board knows which level means "on"): [`Parts`];
