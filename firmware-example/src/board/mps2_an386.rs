@@ -125,7 +125,10 @@ pub struct Mps2An386 {
 #[inline(always)]
 pub fn take() -> Parts<Mps2An386, Led, Led> {
     let Some(p) = cortex_m::Peripherals::take() else {
-        let _ = writeln!(Console::new(), "peripherals already taken");
+        // Straight to the host: the console is built in place below, and only once.
+        if let Ok(mut s) = hio::hstdout() {
+            let _ = s.write_all(b"peripherals already taken\n");
+        }
         exit(false)
     };
     Parts {
