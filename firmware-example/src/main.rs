@@ -1,44 +1,26 @@
-//! `ellipsoid-node`: the sensor node image. Joins the board to the board-independent application.
-#![no_std]
-#![no_main]
-
-use core::fmt::Write;
-
-use cortex_m_rt::entry;
-use ellipsoid_firmware_example::board;
-use ellipsoid_firmware_example::node::Node;
-use ellipsoid_firmware_example::pins::{ActiveLevel, Line};
-use ellipsoid_firmware_example::source::Table;
+//! `ellipsoid-node`: the sensor node image. It only hands the board chosen by the board feature to
+//! the board-independent application ([`ellipsoid_firmware_example::app`]).
+#![cfg_attr(target_os = "none", no_std, no_main)]
 
 /// Features per reading: the demo booster pump's five sensors. A blob for another N is refused
 /// at boot (and reported), like any other invalid slot.
+#[cfg(target_os = "none")]
 const N: usize = 5;
 
-#[entry]
+#[cfg(target_os = "none")]
+#[cortex_m_rt::entry]
 fn main() -> ! {
-    let mut out = board::Console::new();
-    let Some(b) = board::take() else {
-        let _ = writeln!(out, "peripherals already taken");
-        board::exit(false)
-    };
-    let _ = writeln!(out, "boot ellipsoid-node n={N}");
-    let alarm = Line::new(b.alarm, ActiveLevel::High);
-    let fault = Line::new(b.fault, ActiveLevel::High);
-    let mut node = Node::<_, _, N>::boot(&board::model_slots(), alarm, fault, &mut out);
-    let ok = match Table::<N>::new(board::readings()) {
-        Ok(mut table) => {
-            let _ = writeln!(out, "readings count={}", table.count());
-            board::paint_stack();
-            node.run(&mut table, &mut out);
-            let _ = writeln!(out, "stack peak_bytes={}", board::stack_peak());
-            true
-        }
-        Err(e) => {
-            let _ = writeln!(out, "readings unusable: {e}");
-            node.source_failed(&mut out);
-            false
-        }
-    };
-    let _ = writeln!(out, "leds={:02b}", board::leds() & 0b11);
-    board::exit(ok)
+    use ellipsoid_firmware_example::{app, board::selected};
+    app::run::<N>(selected::take())
+}
+
+/// The default board feature is on in host builds too (`cargo build --workspace`), where there is
+/// no board: the host binary only says how to build the image.
+#[cfg(not(target_os = "none"))]
+fn main() {
+    eprintln!(
+        "ellipsoid-node: this is a board image; build it with \
+         --target thumbv7em-none-eabihf (see firmware-example/README.md)"
+    );
+    std::process::exit(2);
 }

@@ -23,6 +23,12 @@ pub trait ReadingSource<const N: usize> {
     /// A sensor that could not be read reports NaN for it: the core turns that into a reading
     /// fault and the fault line, never into a normal score.
     fn next_reading(&mut self) -> Option<[f32; N]>;
+
+    /// How many readings the source holds in all, if it is a finite table (reported at the
+    /// start). `None`, the default, for a live sensor.
+    fn total(&self) -> Option<u32> {
+        None
+    }
 }
 
 /// The four bytes a reading table starts with.
@@ -136,6 +142,10 @@ impl<const N: usize> ReadingSource<N> for Table<'_, N> {
             *xi = <[u8; 4]>::try_from(b).map_or(f32::NAN, f32::from_le_bytes);
         }
         Some(x)
+    }
+
+    fn total(&self) -> Option<u32> {
+        Some(self.count)
     }
 }
 

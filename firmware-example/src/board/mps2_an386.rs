@@ -1,27 +1,32 @@
-//! The board: the emulated Arm MPS2 AN386 (Cortex-M4F), as `qemu-system-arm -machine mps2-an386`.
+//! The emulated Arm MPS2 AN386 (Cortex-M4F), as `qemu-system-arm -machine mps2-an386`. Feature
+//! `mps2-an386`; memory map `boards/mps2_an386/memory.x`.
 //!
-//! Everything that is specific to a board lives in this file (and in `memory.x`):
+//! Everything that is specific to this board lives in this file and its memory map:
 //!
 //! * the two output pins: bits 0 and 1 of the FPGA I/O block's LED register (`0x4002_8000`),
-//!   alarm and fault;
-//! * where the model slots and the reading table are (linker symbols from `memory.x`);
+//!   alarm and fault, both active-high; the register is read back at the end of a run;
+//! * where the model slots and the reading table are (linker symbols from the memory map); the
+//!   readings are a [`Table`] that the emulator's loader puts in memory;
 //! * the console: ARM semihosting to the host's standard output, a line at a time;
 //! * the end of a run: semihosting exit, which ends the emulator with a status;
-//! * a tick counter (SysTick on the core clock) and a stack painter for the figures in the README.
+//! * its measurements: the stack painter of [`crate::measure`] around the scoring loop, and the
+//!   SysTick counter for the `score-cost` image.
 //!
-//! Porting to a real board means writing this file again with that board's HAL: its GPIO pins
-//! (they already implement embedded-hal's `OutputPin`), a UART or RTT for the console, an ADC or
-//! I²C/SPI sensor as a [`crate::source::ReadingSource`], and its flash in `memory.x`.
+//! A port to another board writes a file like this one (see the README, "Porting to another
+//! board").
 
 use core::convert::Infallible;
-use core::fmt;
+use core::fmt::{self, Write};
 use core::ptr::{addr_of, read_volatile, write_volatile};
 
-use cortex_m::peripheral::{syst::SystClkSource, SYST};
 use cortex_m_semihosting::{debug, hio};
 use embedded_hal::digital::{ErrorType, OutputPin};
 
+use crate::board::{Board, Parts};
+use crate::measure::{self, Ticks};
+use crate::pins::{ActiveLevel, Line};
 use crate::slots::Slot;
+use crate::source::{Table, TableError};
 
 /// The FPGA I/O block's LED0 register: two LEDs, bits 0 and 1.
 const FPGAIO_LED0: usize = 0x4002_8000;
@@ -33,19 +38,17 @@ extern "C" {
     static _model_b_len: u8;
     static _readings_start: u8;
     static _readings_len: u8;
-    static _stack_start: u32;
-    static _stack_end: u32;
 }
 
 fn region(start: *const u8, len: *const u8) -> &'static [u8] {
-    // SAFETY: `memory.x` reserves these regions for data only, apart from every section of the
+    // SAFETY: the memory map reserves these regions for data only, apart from every section of the
     // image; the emulator's loader (or a flash programmer) writes them before the core starts,
     // and nothing writes them while the firmware runs.
     unsafe { core::slice::from_raw_parts(start, len as usize) }
 }
 
 /// The two model slots, A and B.
-pub fn model_slots() -> [Slot<'static>; 2] {
+fn model_slots() -> [Slot<'static>; 2] {
     // Only the addresses of the linker symbols are taken, which needs no `unsafe`.
     let (a, al) = (addr_of!(_model_a_start), addr_of!(_model_a_len));
     let (b, bl) = (addr_of!(_model_b_start), addr_of!(_model_b_len));
@@ -62,7 +65,7 @@ pub fn model_slots() -> [Slot<'static>; 2] {
 }
 
 /// The region the reading table is loaded into.
-pub fn readings() -> &'static [u8] {
+fn reading_region() -> &'static [u8] {
     let (r, rl) = (addr_of!(_readings_start), addr_of!(_readings_len));
     region(r, rl)
 }
@@ -83,7 +86,7 @@ fn modify_leds(f: impl FnOnce(u32) -> u32) {
 }
 
 /// The LED register as the hardware holds it (bit 0 alarm, bit 1 fault; 1 = high).
-pub fn leds() -> u32 {
+fn leds() -> u32 {
     // SAFETY: see `modify_leds`.
     unsafe { read_volatile(FPGAIO_LED0 as *const u32) }
 }
@@ -106,24 +109,70 @@ impl OutputPin for Led {
     }
 }
 
-/// The board's peripherals that the application uses.
-pub struct Board {
-    /// The alarm pin: LED 0.
-    pub alarm: Led,
-    /// The fault pin: LED 1.
-    pub fault: Led,
+/// The board, apart from its two output lines.
+pub struct Mps2An386 {
+    /// The console.
+    pub console: Console,
     /// The tick counter.
     pub ticks: Ticks,
 }
 
-/// Take the peripherals. Returns `None` if called twice.
-pub fn take() -> Option<Board> {
-    let p = cortex_m::Peripherals::take()?;
-    Some(Board {
-        alarm: Led { mask: 1 << 0 },
-        fault: Led { mask: 1 << 1 },
-        ticks: Ticks::new(p.SYST),
-    })
+/// Take the board, once, at reset: LED 0 is the alarm line and LED 1 the fault line, both
+/// active-high. A second call reports it and ends the run.
+///
+/// Inlined into the image's entry, like [`crate::app::run`], and the console is built in place:
+/// the image keeps a single console on its stack.
+#[inline(always)]
+pub fn take() -> Parts<Mps2An386, Led, Led> {
+    let Some(p) = cortex_m::Peripherals::take() else {
+        // Straight to the host: the console is built in place below, and only once.
+        if let Ok(mut s) = hio::hstdout() {
+            let _ = s.write_all(b"peripherals already taken\n");
+        }
+        exit(false)
+    };
+    Parts {
+        board: Mps2An386 {
+            console: Console::new(),
+            ticks: Ticks::new(p.SYST),
+        },
+        alarm: Line::new(Led { mask: 1 << 0 }, ActiveLevel::High),
+        fault: Line::new(Led { mask: 1 << 1 }, ActiveLevel::High),
+    }
+}
+
+impl<const N: usize> Board<N> for Mps2An386 {
+    type Console = Console;
+    type Source = Table<'static, N>;
+    type SourceError = TableError;
+
+    fn console(&mut self) -> &mut Console {
+        &mut self.console
+    }
+
+    fn model_slots(&self) -> [Slot<'static>; 2] {
+        model_slots()
+    }
+
+    fn readings(&mut self) -> Result<Table<'static, N>, TableError> {
+        Table::new(reading_region())
+    }
+
+    fn start_measuring(&mut self) {
+        measure::paint_stack();
+    }
+
+    fn stack_peak(&self) -> Option<usize> {
+        Some(measure::stack_peak())
+    }
+
+    fn output_levels(&self) -> Option<u32> {
+        Some(leds())
+    }
+
+    fn finish(self, ok: bool) -> ! {
+        exit(ok)
+    }
 }
 
 /// The console: semihosting standard output, written a line at a time.
@@ -184,102 +233,8 @@ pub fn exit(ok: bool) -> ! {
     }
 }
 
-/// SysTick on the core clock, free-running over its full 24 bits.
-pub struct Ticks {
-    _syst: SYST,
-}
-
-impl Ticks {
-    fn new(mut syst: SYST) -> Self {
-        syst.set_clock_source(SystClkSource::Core);
-        syst.set_reload(0x00FF_FFFF);
-        syst.clear_current();
-        syst.enable_counter();
-        Self { _syst: syst }
-    }
-
-    /// The counter now. It counts down.
-    #[inline(always)]
-    pub fn now(&self) -> u32 {
-        SYST::get_current()
-    }
-
-    /// Ticks from `start` to `end` (two values of [`Ticks::now`]), for spans under 2²⁴ ticks.
-    pub const fn elapsed(start: u32, end: u32) -> u32 {
-        start.wrapping_sub(end) & 0x00FF_FFFF
-    }
-}
-
-/// A busy loop of exactly `2 · iterations` instructions (`subs`, `bne`), to calibrate [`Ticks`].
-#[inline(always)]
-pub fn spin(iterations: u32) {
-    if iterations == 0 {
-        return;
-    }
-    // SAFETY: a register-only loop; no memory, no stack.
-    unsafe {
-        core::arch::asm!(
-            "1:",
-            "subs {0}, #1",
-            "bne 1b",
-            inout(reg) iterations => _,
-            options(nomem, nostack),
-        );
-    }
-}
-
-const PAINT: u32 = 0x5EE5_5EE5;
-/// How far below the current stack pointer the painter goes (the stack's lowest possible use).
-const PAINT_WINDOW: usize = 64 * 1024;
-
-fn stack_bounds() -> (usize, usize) {
-    let (top, end) = (
-        addr_of!(_stack_start) as usize,
-        addr_of!(_stack_end) as usize,
-    );
-    let low = top.saturating_sub(PAINT_WINDOW).max(end);
-    (low, top)
-}
-
-/// How deep the stack is now, in bytes from its top.
-#[inline(always)]
-pub fn stack_depth() -> usize {
-    let (_, top) = stack_bounds();
-    top.saturating_sub(cortex_m::register::msp::read() as usize)
-}
-
-/// Fill the unused stack below the current stack pointer (down to 64 KiB below its top) with a
-/// pattern, so that [`stack_peak`] can tell how deep the stack went afterwards.
-#[inline(never)]
-pub fn paint_stack() {
-    let (low, _) = stack_bounds();
-    // Stay clear of this function's own frame.
-    let sp = (cortex_m::register::msp::read() as usize).saturating_sub(32) & !3;
-    let mut p = low;
-    while p < sp {
-        // SAFETY: [low, sp) is stack memory below the stack pointer, which nothing uses now
-        // (there are no interrupts).
-        unsafe { write_volatile(p as *mut u32, PAINT) };
-        p += 4;
-    }
-}
-
-/// The deepest the stack has gone since [`paint_stack`], in bytes from its top. A value of
-/// 64 KiB means the painted window was used up (the true peak may be higher).
-#[inline(never)]
-pub fn stack_peak() -> usize {
-    let (low, top) = stack_bounds();
-    let mut p = low;
-    // SAFETY: [low, top) is the stack region; reading it is harmless.
-    while p < top && unsafe { read_volatile(p as *const u32) } == PAINT {
-        p += 4;
-    }
-    top - p
-}
-
 #[panic_handler]
 fn on_panic(info: &core::panic::PanicInfo<'_>) -> ! {
-    use fmt::Write;
     let mut out = Console::new();
     let _ = writeln!(out, "panic: {info}");
     exit(false)
