@@ -556,6 +556,33 @@ mod tests {
         );
     }
 
+    /// Each parameter is finite, but `W₀₀ · scale₀ = 1e30 · 1e30` is not: the encoder refuses to
+    /// write it, and a blob carrying it (written by hand and resealed) is refused by the decoder,
+    /// exactly as `Model::from_blob` refuses it.
+    #[test]
+    fn a_fold_beyond_f32_is_refused_by_encode_and_decode() {
+        let mut p = params();
+        p.preprocess.scale[0] = 1.0e30;
+        p.w[0][0] = 1.0e30;
+        let mut buf = [0u8; max_len(2)];
+        assert_eq!(
+            encode(&p, &mut buf),
+            Err(EncodeError::Invalid(ModelError::Overflow))
+        );
+        let n = encode(&params(), &mut buf).unwrap();
+        let mut covered = [0u8; max_len(2)];
+        covered[..n - CRC_LEN].copy_from_slice(&buf[..n - CRC_LEN]);
+        // Varints take 11 bytes (4 + 5 + 1 + 1): offset at 21, scale at 29, mean at 37, W₀₀ at 45.
+        assert_eq!(covered[29..33], 0.5f32.to_le_bytes());
+        assert_eq!(covered[45..49], 1.0f32.to_le_bytes());
+        covered[29..33].copy_from_slice(&1.0e30f32.to_le_bytes());
+        covered[45..49].copy_from_slice(&1.0e30f32.to_le_bytes());
+        let blob = reseal(&covered[..n - CRC_LEN]);
+        let refused = DecodeError::Invalid(ModelError::Overflow);
+        assert_eq!(decode::<2>(&blob), Err(refused));
+        assert_eq!(Model::<2>::from_blob(&blob), Err(refused));
+    }
+
     /// CRC-32/ISO-HDLC check value: the CRC of the ASCII bytes "123456789" is 0xCBF43926, as
     /// listed in the catalogue of parametrised CRC algorithms and carried by the `crc` crate's
     /// `CRC_32_ISO_HDLC.check` (the value is also from memory; the crate's constant is the source).

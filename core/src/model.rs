@@ -15,7 +15,10 @@
 
 use core::fmt;
 
-use crate::params::{AlarmPolicy, ModelError, ModelMeta, ModelParams, Thresholds, MAX_FEATURES};
+use crate::params::{
+    fold_center, fold_factor, AlarmPolicy, ModelError, ModelMeta, ModelParams, Thresholds,
+    MAX_FEATURES,
+};
 
 /// `ln(2π)`.
 const LN_2PI: f64 = 1.837_877_066_409_345_5;
@@ -112,6 +115,10 @@ impl<const N: usize> Model<N> {
     const DIMENSION_OK: () = assert!(N > 0 && N <= MAX_FEATURES, "N must be in 1..=32");
 
     /// Validate `params` and compile them for scoring.
+    ///
+    /// Fails exactly when [`ModelParams::validate`] does: the validation checks this very fold
+    /// (every element of `V` and `c` finite, the diagonal of `V` positive), with the same
+    /// operations, so a blob that decodes also compiles.
     pub fn new(params: ModelParams<N>) -> Result<Self, ModelError> {
         #[allow(clippy::let_unit_value)]
         let () = Self::DIMENSION_OK;
@@ -124,26 +131,17 @@ impl<const N: usize> Model<N> {
             .zip(&params.mean)
             .zip(&p.scale)
         {
-            *c = o + m / s;
+            *c = fold_center(*o, *m, *s);
         }
         let mut v = [[0.0f32; N]; N];
         let mut ln_norm = -0.5 * N as f64 * LN_2PI;
         for (i, (vrow, wrow)) in v.iter_mut().zip(&params.w).enumerate() {
             for (vij, (wij, sj)) in vrow.iter_mut().zip(wrow.iter().zip(&p.scale)).take(i + 1) {
-                *vij = wij * sj;
-            }
-            if vrow.iter().any(|x| !x.is_finite()) {
-                return Err(ModelError::Overflow);
+                *vij = fold_factor(*wij, *sj);
             }
             if let Some(d) = vrow.get(i) {
-                if *d <= 0.0 {
-                    return Err(ModelError::Overflow);
-                }
                 ln_norm += libm::log(f64::from(*d));
             }
-        }
-        if center.iter().any(|c| !c.is_finite()) {
-            return Err(ModelError::Overflow);
         }
         Ok(Self {
             params,
