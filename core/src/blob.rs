@@ -149,6 +149,13 @@ pub enum DecodeError {
     },
     /// The body could not be read (a varint too long, or the body ended early).
     Body,
+    /// A varint in the body is not in its shortest form (it ends in a `0x00` byte after a
+    /// continuation byte). Only the canonical form is accepted, so that a model has exactly one
+    /// encoding and one CRC.
+    NonCanonical {
+        /// Offset in the blob of the varint's first byte.
+        offset: usize,
+    },
     /// The body has bytes left over after the last field.
     TrailingBytes,
     /// The bytes decoded, but the model breaks a rule.
@@ -180,6 +187,10 @@ impl fmt::Display for DecodeError {
                 "CRC mismatch: blob says {stored:#010x}, bytes give {computed:#010x} (corrupt or torn)"
             ),
             DecodeError::Body => f.write_str("blob body is malformed"),
+            DecodeError::NonCanonical { offset } => write!(
+                f,
+                "the varint at byte {offset} of the blob is not in its shortest form"
+            ),
             DecodeError::TrailingBytes => f.write_str("blob body has bytes after its last field"),
             DecodeError::Invalid(e) => write!(f, "blob holds an invalid model: {e}"),
         }
@@ -304,18 +315,40 @@ pub fn encode<const N: usize>(
 
 struct Reader<'a> {
     rest: &'a [u8],
+    /// Offset in the blob of `rest[0]`.
+    offset: usize,
 }
 
 impl Reader<'_> {
-    fn take<T: DeserializeOwned>(&mut self) -> Result<T, DecodeError> {
-        let (value, rest) = postcard::take_from_bytes(self.rest).map_err(|_| DecodeError::Body)?;
+    fn take<T: DeserializeOwned>(&mut self) -> Result<(T, &[u8]), DecodeError> {
+        let before = self.rest;
+        let (value, rest) = postcard::take_from_bytes(before).map_err(|_| DecodeError::Body)?;
+        let used = before.len() - rest.len();
         self.rest = rest;
+        self.offset += used;
+        Ok((value, before.get(..used).unwrap_or(before)))
+    }
+
+    fn float(&mut self) -> Result<f32, DecodeError> {
+        self.take().map(|(v, _)| v)
+    }
+
+    /// An unsigned varint (LEB128, as postcard writes it), in its shortest form only. postcard's
+    /// reader refuses a varint too long for its type or with bits beyond it, but accepts padding:
+    /// `83 00` reads as 3. A varint of more than one byte is the shortest form exactly when its
+    /// last byte is not zero.
+    fn varint<T: DeserializeOwned>(&mut self) -> Result<T, DecodeError> {
+        let offset = self.offset;
+        let (value, bytes) = self.take()?;
+        if let [_, .., 0] = bytes {
+            return Err(DecodeError::NonCanonical { offset });
+        }
         Ok(value)
     }
 
-    fn take_all(&mut self, out: &mut [f32]) -> Result<(), DecodeError> {
+    fn floats(&mut self, out: &mut [f32]) -> Result<(), DecodeError> {
         out.iter_mut().try_for_each(|v| {
-            *v = self.take()?;
+            *v = self.float()?;
             Ok(())
         })
     }
@@ -346,33 +379,32 @@ pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeErro
     }
     let mut r = Reader {
         rest: covered.get(HEADER_LEN..).ok_or(DecodeError::Body)?,
+        offset: HEADER_LEN,
     };
     let meta = ModelMeta {
-        model_id: r.take()?,
-        trained_at: r.take()?,
-        sequence: r.take()?,
+        model_id: r.varint()?,
+        trained_at: r.varint()?,
+        sequence: r.varint()?,
     };
     let mut preprocess = Preprocess::<N> {
-        log_mask: r.take()?,
+        log_mask: r.varint()?,
         ..Preprocess::identity()
     };
-    r.take_all(&mut preprocess.offset)?;
-    r.take_all(&mut preprocess.scale)?;
+    r.floats(&mut preprocess.offset)?;
+    r.floats(&mut preprocess.scale)?;
     let mut mean = [0.0f32; N];
-    r.take_all(&mut mean)?;
+    r.floats(&mut mean)?;
     let mut w = [[0.0f32; N]; N];
     for (i, row) in w.iter_mut().enumerate() {
-        for v in row.iter_mut().take(i + 1) {
-            *v = r.take()?;
-        }
+        r.floats(row.get_mut(..=i).unwrap_or(&mut []))?;
     }
     let thresholds = Thresholds {
-        alarm: r.take()?,
-        clear: r.take()?,
+        alarm: r.float()?,
+        clear: r.float()?,
     };
     let policy = AlarmPolicy {
-        raise_after: r.take()?,
-        clear_after: r.take()?,
+        raise_after: r.varint()?,
+        clear_after: r.varint()?,
         latch: h.flags & FLAG_LATCH != 0,
     };
     if !r.rest.is_empty() {
@@ -554,6 +586,72 @@ mod tests {
                 index: 1
             }))
         );
+    }
+
+    /// `covered` (a blob without its CRC) with `cut` bytes at `at` replaced by `with`, resealed.
+    fn spliced(covered: &[u8], at: usize, cut: usize, with: &[u8]) -> heapless::Vec<u8, 256> {
+        let mut body: heapless::Vec<u8, 256> = heapless::Vec::new();
+        body.extend_from_slice(&covered[..at]).unwrap();
+        body.extend_from_slice(with).unwrap();
+        body.extend_from_slice(&covered[at + cut..]).unwrap();
+        reseal(&body)
+    }
+
+    #[test]
+    fn overlong_varints_are_refused() {
+        let mut buf = [0u8; max_len(2)];
+        let n = encode(&params(), &mut buf).unwrap();
+        let covered = &buf[..n - CRC_LEN];
+        // The resealed original decodes: the splicing itself is sound.
+        assert_eq!(decode::<2>(&spliced(covered, 19, 0, &[])), Ok(params()));
+        // model_id 0x01020304 (4 bytes at 10), trained_at (5 bytes), sequence 7 at 19.
+        assert_eq!(covered[19], 7);
+        // 7 as `87 00`: the same value, one byte longer.
+        assert_eq!(
+            decode::<2>(&spliced(covered, 19, 1, &[0x87, 0x00])),
+            Err(DecodeError::NonCanonical { offset: 19 })
+        );
+        // 7 as `87 80 80 80 00`, at the longest a u32 can be.
+        assert_eq!(
+            decode::<2>(&spliced(covered, 19, 1, &[0x87, 0x80, 0x80, 0x80, 0x00])),
+            Err(DecodeError::NonCanonical { offset: 19 })
+        );
+        // model_id, its 4 bytes padded to 5.
+        let id = &covered[10..14];
+        assert_eq!(id[3] & 0x80, 0);
+        let padded = [id[0], id[1], id[2], id[3] | 0x80, 0x00];
+        assert_eq!(
+            decode::<2>(&spliced(covered, 10, 4, &padded)),
+            Err(DecodeError::NonCanonical { offset: 10 })
+        );
+        // clear_after 200, the last field (`c8 01`), as `c8 81 00`.
+        let at = covered.len() - 2;
+        assert_eq!(covered[at..], [0xc8, 0x01]);
+        assert_eq!(
+            decode::<2>(&spliced(covered, at, 2, &[0xc8, 0x81, 0x00])),
+            Err(DecodeError::NonCanonical { offset: at })
+        );
+        // A varint with bits beyond its type, or longer than its type allows, stays a Body error.
+        assert_eq!(
+            decode::<2>(&spliced(covered, 19, 1, &[0x87, 0x80, 0x80, 0x80, 0x10])),
+            Err(DecodeError::Body)
+        );
+        assert_eq!(
+            decode::<2>(&spliced(
+                covered,
+                19,
+                1,
+                &[0x87, 0x80, 0x80, 0x80, 0x80, 0x00]
+            )),
+            Err(DecodeError::Body)
+        );
+        // A zero in one byte is canonical.
+        let mut p = params();
+        p.meta.sequence = 0;
+        let mut b = [0u8; max_len(2)];
+        let len = encode(&p, &mut b).unwrap();
+        assert_eq!(b[19], 0);
+        assert_eq!(decode::<2>(&b[..len]), Ok(p));
     }
 
     /// Each parameter is finite, but `W₀₀ · scale₀ = 1e30 · 1e30` is not: the encoder refuses to
