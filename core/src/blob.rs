@@ -116,6 +116,14 @@ pub enum DecodeError {
         /// The version byte found.
         found: u8,
     },
+    /// The caller asked for a model of a dimension no blob can describe (0, or more than
+    /// [`MAX_FEATURES`]).
+    UnsupportedDimension {
+        /// N in the blob.
+        found: u8,
+        /// N the caller asked for.
+        requested: usize,
+    },
     /// The blob is for another number of features than the firmware was built for.
     Dimension {
         /// N in the blob.
@@ -171,6 +179,17 @@ impl fmt::Display for DecodeError {
             DecodeError::Magic => f.write_str("not a model blob (bad magic)"),
             DecodeError::Version { found } => {
                 write!(f, "blob format version {found} is not supported (this build reads {VERSION})")
+            }
+            DecodeError::UnsupportedDimension { found, requested } => {
+                if usize::from(*found) == *requested {
+                    write!(f, "blob has {found} features; models have 1 to {MAX_FEATURES}")
+                } else {
+                    write!(
+                        f,
+                        "blob has {found} features, and the {requested} asked for is outside \
+                         the 1 to {MAX_FEATURES} models have"
+                    )
+                }
             }
             DecodeError::Dimension { found, expected } => {
                 write!(f, "blob has {found} features, expected {expected}")
@@ -357,11 +376,16 @@ impl Reader<'_> {
 /// Decode and validate a blob for a model of `N` features. `bytes` must be exactly the blob.
 pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeError> {
     let h = Header::parse(bytes)?;
-    let expected = u8::try_from(N).unwrap_or(u8::MAX);
-    if usize::from(h.n) != N || N > MAX_FEATURES {
+    if N == 0 || N > MAX_FEATURES {
+        return Err(DecodeError::UnsupportedDimension {
+            found: h.n,
+            requested: N,
+        });
+    }
+    if usize::from(h.n) != N {
         return Err(DecodeError::Dimension {
             found: h.n,
-            expected,
+            expected: N as u8,
         });
     }
     if h.len != bytes.len() {
@@ -679,6 +703,31 @@ mod tests {
         let refused = DecodeError::Invalid(ModelError::Overflow);
         assert_eq!(decode::<2>(&blob), Err(refused));
         assert_eq!(Model::<2>::from_blob(&blob), Err(refused));
+    }
+
+    #[test]
+    fn an_unsupported_dimension_is_named_as_such() {
+        // A blob of 40 features (header only matters: the dimension is checked before the CRC).
+        let mut b = [0u8; 64];
+        b[..10].copy_from_slice(&[b'E', b'L', b'S', b'D', VERSION, 40, 0, 0, 64, 0]);
+        let e = decode::<40>(&b).unwrap_err();
+        assert_eq!(
+            e,
+            DecodeError::UnsupportedDimension {
+                found: 40,
+                requested: 40
+            }
+        );
+        assert_eq!(e.to_string(), "blob has 40 features; models have 1 to 32");
+        assert!(matches!(
+            decode::<0>(&b),
+            Err(DecodeError::UnsupportedDimension { requested: 0, .. })
+        ));
+        // A supported build and a blob of another dimension: the plain mismatch.
+        assert_eq!(
+            decode::<5>(&b).unwrap_err().to_string(),
+            "blob has 40 features, expected 5"
+        );
     }
 
     /// CRC-32/ISO-HDLC check value: the CRC of the ASCII bytes "123456789" is 0xCBF43926, as
