@@ -57,6 +57,10 @@ pub enum ReadingFault {
     },
     /// Every input was finite but d² overflowed `f32`.
     Overflow,
+    /// Only from [`Model::explain`]: d² is finite (and [`Model::score`] scores the reading), but
+    /// its split into per-feature contributions does not fit in `f32`: contributions beyond the
+    /// range of `f32` cancel to a d² inside it.
+    ContributionOverflow,
 }
 
 impl fmt::Display for ReadingFault {
@@ -70,6 +74,9 @@ impl fmt::Display for ReadingFault {
                 "feature {feature} is log-transformed and its reading is not positive"
             ),
             ReadingFault::Overflow => f.write_str("d² overflows f32"),
+            ReadingFault::ContributionOverflow => f.write_str(
+                "the per-feature contributions to a finite d² overflow f32 (the score stands)",
+            ),
         }
     }
 }
@@ -271,7 +278,12 @@ impl<const N: usize> Model<N> {
     /// Score a reading and split d² into per-feature contributions.
     ///
     /// The contributions are accumulated in `f64` (software on an FPU-less or single-precision
-    /// core, but only needed when an alarm is raised), then rounded to `f32`.
+    /// core, but only needed when an alarm is raised), then rounded to `f32`. They cannot overflow
+    /// `f64` (each is at most about 10⁹⁸ for finite inputs), but they can leave `f32` while their
+    /// sum, d², stays inside it (large terms of opposite sign that cancel). Then there is no
+    /// faithful `f32` split, and this returns [`ReadingFault::ContributionOverflow`] rather than
+    /// an infinite contribution; [`Model::score`] still scores the reading. Every contribution
+    /// returned is finite.
     pub fn explain(&self, x: &[f32; N]) -> Result<Explained<N>, ReadingFault> {
         let d = self.deviation(x)?;
         let (z, d2) = self.project(&d);
@@ -285,6 +297,9 @@ impl<const N: usize> Model<N> {
         let mut contributions = [0.0f32; N];
         for ((c, dj), bj) in contributions.iter_mut().zip(&d).zip(&back) {
             *c = (f64::from(*dj) * bj) as f32;
+            if !c.is_finite() {
+                return Err(ReadingFault::ContributionOverflow);
+            }
         }
         Ok(Explained {
             score,
@@ -391,6 +406,33 @@ mod tests {
         assert_eq!(e.score.d2.to_bits(), s.d2.to_bits());
         let sum: f32 = e.contributions.iter().sum();
         assert!(((sum - s.d2) / s.d2).abs() < 1e-5);
+    }
+
+    /// Contributions of opposite sign beyond f32 that cancel to a finite d²: N = 2,
+    /// W₁₀ = −2⁴⁰, x = (2⁴⁰, 2⁸⁰ + 2⁵⁷). Then z = (2⁴⁰, 2⁵⁷) exactly, d² = 2⁸⁰ + 2¹¹⁴, but the
+    /// contributions are about ∓2¹³⁷, beyond f32's 2¹²⁸.
+    #[test]
+    fn contributions_beyond_f32_are_a_fault_not_infinity() {
+        let two40 = 2.0f32.powi(40);
+        let m = Model::<2>::new(ModelParams {
+            meta: ModelMeta::default(),
+            preprocess: Preprocess::identity(),
+            mean: [0.0; 2],
+            w: [[1.0, 0.0], [-two40, 1.0]],
+            thresholds: Thresholds {
+                alarm: 9.0,
+                clear: 4.0,
+            },
+            policy: AlarmPolicy::default(),
+        })
+        .unwrap();
+        let x = [two40, 2.0f32.powi(80) + 2.0f32.powi(57)];
+        let s = m.score(&x).unwrap();
+        assert_eq!(s.d2, 2.0f32.powi(80) + 2.0f32.powi(114));
+        assert_eq!(m.explain(&x), Err(ReadingFault::ContributionOverflow));
+        // A reading of the same model whose contributions fit is explained, finitely.
+        let e = m.explain(&[1.0, two40]).unwrap();
+        assert!(e.contributions.iter().all(|c| c.is_finite()));
     }
 
     #[test]
