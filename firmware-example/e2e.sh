@@ -134,6 +134,28 @@ run none "$ELF" $(load "$W/a-flipped.blob" "$SLOT_A") $(load "$W/b-torn.blob" "$
   $(load "$W/readings.bin" "$TABLE")
 $TOOL no-model --device "$W/none.log" | sed 's/^/A bit-flipped, B torn: /' | tee -a "$W/compared.txt"
 
+# --- pinned scores (tests/golden/golden-n5.pins) -------------------------------------------------
+# The device, with the golden N = 5 model in slot A, scores the pinned readings; its d² bits and
+# faults must be the ones the file pins, as the host test tests/tests/golden_scores.rs requires of
+# the core. The replay comparisons above cannot see a change made to host and device together
+# (another summation order, say); this one can. And it can fail: one changed pin must be refused.
+say "pinned scores: the golden N = 5 model and its readings"
+PINS=tests/golden/golden-n5.pins
+$TOOL pins-load --pins "$PINS" --blob "$W/golden-n5.blob" --table "$W/golden-n5.bin"
+# shellcheck disable=SC2046
+run pins "$ELF" $(load "$W/golden-n5.blob" "$SLOT_A") $(load "$W/golden-n5.bin" "$TABLE")
+$TOOL pins-compare --pins "$PINS" --device "$W/pins.log"
+awk '!done && /^r / && match($0, /d2=[0-9a-f]+/) {
+  c = substr($0, RSTART + 10, 1); $0 = substr($0, 1, RSTART + 9) (c == "0" ? "1" : "0") substr($0, RSTART + 11)
+  done = 1
+} { print }' "$PINS" >"$W/pins-tampered.pins"
+cmp -s "$PINS" "$W/pins-tampered.pins" && fail "the tampered pins file is unchanged"
+if $TOOL pins-compare --pins "$W/pins-tampered.pins" --device "$W/pins.log" >"$W/pins-tampered.out" 2>&1; then
+  fail "pins-compare accepted a device log against a changed pin"
+fi
+echo "refused, as it must be: $(grep -m1 MISMATCH "$W/pins-tampered.out")"
+# --- end of pinned scores ---------------------------------------------------------------------
+
 say "6. panic machinery on the decode and score paths"
 $TOOL reach --elf "$ELF" --roots slots::load,node::score,node::explain | tee "$W/reach.txt"
 

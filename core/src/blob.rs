@@ -116,6 +116,14 @@ pub enum DecodeError {
         /// The version byte found.
         found: u8,
     },
+    /// The caller asked for a model of a dimension no blob can describe (0, or more than
+    /// [`MAX_FEATURES`]).
+    UnsupportedDimension {
+        /// N in the blob.
+        found: u8,
+        /// N the caller asked for.
+        requested: usize,
+    },
     /// The blob is for another number of features than the firmware was built for.
     Dimension {
         /// N in the blob.
@@ -149,6 +157,13 @@ pub enum DecodeError {
     },
     /// The body could not be read (a varint too long, or the body ended early).
     Body,
+    /// A varint in the body is not in its shortest form (it ends in a `0x00` byte after a
+    /// continuation byte). Only the canonical form is accepted, so that a model has exactly one
+    /// encoding and one CRC.
+    NonCanonical {
+        /// Offset in the blob of the varint's first byte.
+        offset: usize,
+    },
     /// The body has bytes left over after the last field.
     TrailingBytes,
     /// The bytes decoded, but the model breaks a rule.
@@ -165,6 +180,17 @@ impl fmt::Display for DecodeError {
             DecodeError::Version { found } => {
                 write!(f, "blob format version {found} is not supported (this build reads {VERSION})")
             }
+            DecodeError::UnsupportedDimension { found, requested } => {
+                if usize::from(*found) == *requested {
+                    write!(f, "blob has {found} features; models have 1 to {MAX_FEATURES}")
+                } else {
+                    write!(
+                        f,
+                        "blob has {found} features, and the {requested} asked for is outside \
+                         the 1 to {MAX_FEATURES} models have"
+                    )
+                }
+            }
             DecodeError::Dimension { found, expected } => {
                 write!(f, "blob has {found} features, expected {expected}")
             }
@@ -180,6 +206,10 @@ impl fmt::Display for DecodeError {
                 "CRC mismatch: blob says {stored:#010x}, bytes give {computed:#010x} (corrupt or torn)"
             ),
             DecodeError::Body => f.write_str("blob body is malformed"),
+            DecodeError::NonCanonical { offset } => write!(
+                f,
+                "the varint at byte {offset} of the blob is not in its shortest form"
+            ),
             DecodeError::TrailingBytes => f.write_str("blob body has bytes after its last field"),
             DecodeError::Invalid(e) => write!(f, "blob holds an invalid model: {e}"),
         }
@@ -304,18 +334,40 @@ pub fn encode<const N: usize>(
 
 struct Reader<'a> {
     rest: &'a [u8],
+    /// Offset in the blob of `rest[0]`.
+    offset: usize,
 }
 
 impl Reader<'_> {
-    fn take<T: DeserializeOwned>(&mut self) -> Result<T, DecodeError> {
-        let (value, rest) = postcard::take_from_bytes(self.rest).map_err(|_| DecodeError::Body)?;
+    fn take<T: DeserializeOwned>(&mut self) -> Result<(T, &[u8]), DecodeError> {
+        let before = self.rest;
+        let (value, rest) = postcard::take_from_bytes(before).map_err(|_| DecodeError::Body)?;
+        let used = before.len() - rest.len();
         self.rest = rest;
+        self.offset += used;
+        Ok((value, before.get(..used).unwrap_or(before)))
+    }
+
+    fn float(&mut self) -> Result<f32, DecodeError> {
+        self.take().map(|(v, _)| v)
+    }
+
+    /// An unsigned varint (LEB128, as postcard writes it), in its shortest form only. postcard's
+    /// reader refuses a varint too long for its type or with bits beyond it, but accepts padding:
+    /// `83 00` reads as 3. A varint of more than one byte is the shortest form exactly when its
+    /// last byte is not zero.
+    fn varint<T: DeserializeOwned>(&mut self) -> Result<T, DecodeError> {
+        let offset = self.offset;
+        let (value, bytes) = self.take()?;
+        if let [_, .., 0] = bytes {
+            return Err(DecodeError::NonCanonical { offset });
+        }
         Ok(value)
     }
 
-    fn take_all(&mut self, out: &mut [f32]) -> Result<(), DecodeError> {
+    fn floats(&mut self, out: &mut [f32]) -> Result<(), DecodeError> {
         out.iter_mut().try_for_each(|v| {
-            *v = self.take()?;
+            *v = self.float()?;
             Ok(())
         })
     }
@@ -324,11 +376,16 @@ impl Reader<'_> {
 /// Decode and validate a blob for a model of `N` features. `bytes` must be exactly the blob.
 pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeError> {
     let h = Header::parse(bytes)?;
-    let expected = u8::try_from(N).unwrap_or(u8::MAX);
-    if usize::from(h.n) != N || N > MAX_FEATURES {
+    if N == 0 || N > MAX_FEATURES {
+        return Err(DecodeError::UnsupportedDimension {
+            found: h.n,
+            requested: N,
+        });
+    }
+    if usize::from(h.n) != N {
         return Err(DecodeError::Dimension {
             found: h.n,
-            expected,
+            expected: N as u8,
         });
     }
     if h.len != bytes.len() {
@@ -346,33 +403,32 @@ pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeErro
     }
     let mut r = Reader {
         rest: covered.get(HEADER_LEN..).ok_or(DecodeError::Body)?,
+        offset: HEADER_LEN,
     };
     let meta = ModelMeta {
-        model_id: r.take()?,
-        trained_at: r.take()?,
-        sequence: r.take()?,
+        model_id: r.varint()?,
+        trained_at: r.varint()?,
+        sequence: r.varint()?,
     };
     let mut preprocess = Preprocess::<N> {
-        log_mask: r.take()?,
+        log_mask: r.varint()?,
         ..Preprocess::identity()
     };
-    r.take_all(&mut preprocess.offset)?;
-    r.take_all(&mut preprocess.scale)?;
+    r.floats(&mut preprocess.offset)?;
+    r.floats(&mut preprocess.scale)?;
     let mut mean = [0.0f32; N];
-    r.take_all(&mut mean)?;
+    r.floats(&mut mean)?;
     let mut w = [[0.0f32; N]; N];
     for (i, row) in w.iter_mut().enumerate() {
-        for v in row.iter_mut().take(i + 1) {
-            *v = r.take()?;
-        }
+        r.floats(row.get_mut(..=i).unwrap_or(&mut []))?;
     }
     let thresholds = Thresholds {
-        alarm: r.take()?,
-        clear: r.take()?,
+        alarm: r.float()?,
+        clear: r.float()?,
     };
     let policy = AlarmPolicy {
-        raise_after: r.take()?,
-        clear_after: r.take()?,
+        raise_after: r.varint()?,
+        clear_after: r.varint()?,
         latch: h.flags & FLAG_LATCH != 0,
     };
     if !r.rest.is_empty() {
@@ -553,6 +609,124 @@ mod tests {
             Err(DecodeError::Invalid(ModelError::FactorDiagonal {
                 index: 1
             }))
+        );
+    }
+
+    /// `covered` (a blob without its CRC) with `cut` bytes at `at` replaced by `with`, resealed.
+    fn spliced(covered: &[u8], at: usize, cut: usize, with: &[u8]) -> heapless::Vec<u8, 256> {
+        let mut body: heapless::Vec<u8, 256> = heapless::Vec::new();
+        body.extend_from_slice(&covered[..at]).unwrap();
+        body.extend_from_slice(with).unwrap();
+        body.extend_from_slice(&covered[at + cut..]).unwrap();
+        reseal(&body)
+    }
+
+    #[test]
+    fn overlong_varints_are_refused() {
+        let mut buf = [0u8; max_len(2)];
+        let n = encode(&params(), &mut buf).unwrap();
+        let covered = &buf[..n - CRC_LEN];
+        // The resealed original decodes: the splicing itself is sound.
+        assert_eq!(decode::<2>(&spliced(covered, 19, 0, &[])), Ok(params()));
+        // model_id 0x01020304 (4 bytes at 10), trained_at (5 bytes), sequence 7 at 19.
+        assert_eq!(covered[19], 7);
+        // 7 as `87 00`: the same value, one byte longer.
+        assert_eq!(
+            decode::<2>(&spliced(covered, 19, 1, &[0x87, 0x00])),
+            Err(DecodeError::NonCanonical { offset: 19 })
+        );
+        // 7 as `87 80 80 80 00`, at the longest a u32 can be.
+        assert_eq!(
+            decode::<2>(&spliced(covered, 19, 1, &[0x87, 0x80, 0x80, 0x80, 0x00])),
+            Err(DecodeError::NonCanonical { offset: 19 })
+        );
+        // model_id, its 4 bytes padded to 5.
+        let id = &covered[10..14];
+        assert_eq!(id[3] & 0x80, 0);
+        let padded = [id[0], id[1], id[2], id[3] | 0x80, 0x00];
+        assert_eq!(
+            decode::<2>(&spliced(covered, 10, 4, &padded)),
+            Err(DecodeError::NonCanonical { offset: 10 })
+        );
+        // clear_after 200, the last field (`c8 01`), as `c8 81 00`.
+        let at = covered.len() - 2;
+        assert_eq!(covered[at..], [0xc8, 0x01]);
+        assert_eq!(
+            decode::<2>(&spliced(covered, at, 2, &[0xc8, 0x81, 0x00])),
+            Err(DecodeError::NonCanonical { offset: at })
+        );
+        // A varint with bits beyond its type, or longer than its type allows, stays a Body error.
+        assert_eq!(
+            decode::<2>(&spliced(covered, 19, 1, &[0x87, 0x80, 0x80, 0x80, 0x10])),
+            Err(DecodeError::Body)
+        );
+        assert_eq!(
+            decode::<2>(&spliced(
+                covered,
+                19,
+                1,
+                &[0x87, 0x80, 0x80, 0x80, 0x80, 0x00]
+            )),
+            Err(DecodeError::Body)
+        );
+        // A zero in one byte is canonical.
+        let mut p = params();
+        p.meta.sequence = 0;
+        let mut b = [0u8; max_len(2)];
+        let len = encode(&p, &mut b).unwrap();
+        assert_eq!(b[19], 0);
+        assert_eq!(decode::<2>(&b[..len]), Ok(p));
+    }
+
+    /// Each parameter is finite, but `W₀₀ · scale₀ = 1e30 · 1e30` is not: the encoder refuses to
+    /// write it, and a blob carrying it (written by hand and resealed) is refused by the decoder,
+    /// exactly as `Model::from_blob` refuses it.
+    #[test]
+    fn a_fold_beyond_f32_is_refused_by_encode_and_decode() {
+        let mut p = params();
+        p.preprocess.scale[0] = 1.0e30;
+        p.w[0][0] = 1.0e30;
+        let mut buf = [0u8; max_len(2)];
+        assert_eq!(
+            encode(&p, &mut buf),
+            Err(EncodeError::Invalid(ModelError::Overflow))
+        );
+        let n = encode(&params(), &mut buf).unwrap();
+        let mut covered = [0u8; max_len(2)];
+        covered[..n - CRC_LEN].copy_from_slice(&buf[..n - CRC_LEN]);
+        // Varints take 11 bytes (4 + 5 + 1 + 1): offset at 21, scale at 29, mean at 37, W₀₀ at 45.
+        assert_eq!(covered[29..33], 0.5f32.to_le_bytes());
+        assert_eq!(covered[45..49], 1.0f32.to_le_bytes());
+        covered[29..33].copy_from_slice(&1.0e30f32.to_le_bytes());
+        covered[45..49].copy_from_slice(&1.0e30f32.to_le_bytes());
+        let blob = reseal(&covered[..n - CRC_LEN]);
+        let refused = DecodeError::Invalid(ModelError::Overflow);
+        assert_eq!(decode::<2>(&blob), Err(refused));
+        assert_eq!(Model::<2>::from_blob(&blob), Err(refused));
+    }
+
+    #[test]
+    fn an_unsupported_dimension_is_named_as_such() {
+        // A blob of 40 features (header only matters: the dimension is checked before the CRC).
+        let mut b = [0u8; 64];
+        b[..10].copy_from_slice(&[b'E', b'L', b'S', b'D', VERSION, 40, 0, 0, 64, 0]);
+        let e = decode::<40>(&b).unwrap_err();
+        assert_eq!(
+            e,
+            DecodeError::UnsupportedDimension {
+                found: 40,
+                requested: 40
+            }
+        );
+        assert_eq!(e.to_string(), "blob has 40 features; models have 1 to 32");
+        assert!(matches!(
+            decode::<0>(&b),
+            Err(DecodeError::UnsupportedDimension { requested: 0, .. })
+        ));
+        // A supported build and a blob of another dimension: the plain mismatch.
+        assert_eq!(
+            decode::<5>(&b).unwrap_err().to_string(),
+            "blob has 40 features, expected 5"
         );
     }
 

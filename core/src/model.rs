@@ -15,7 +15,10 @@
 
 use core::fmt;
 
-use crate::params::{AlarmPolicy, ModelError, ModelMeta, ModelParams, Thresholds, MAX_FEATURES};
+use crate::params::{
+    fold_center, fold_factor, AlarmPolicy, ModelError, ModelMeta, ModelParams, Thresholds,
+    MAX_FEATURES,
+};
 
 /// `ln(2π)`.
 const LN_2PI: f64 = 1.837_877_066_409_345_5;
@@ -54,6 +57,10 @@ pub enum ReadingFault {
     },
     /// Every input was finite but d² overflowed `f32`.
     Overflow,
+    /// Only from [`Model::explain`]: d² is finite (and [`Model::score`] scores the reading), but
+    /// its split into per-feature contributions does not fit in `f32`: contributions beyond the
+    /// range of `f32` cancel to a d² inside it.
+    ContributionOverflow,
 }
 
 impl fmt::Display for ReadingFault {
@@ -67,6 +74,9 @@ impl fmt::Display for ReadingFault {
                 "feature {feature} is log-transformed and its reading is not positive"
             ),
             ReadingFault::Overflow => f.write_str("d² overflows f32"),
+            ReadingFault::ContributionOverflow => f.write_str(
+                "the per-feature contributions to a finite d² overflow f32 (the score stands)",
+            ),
         }
     }
 }
@@ -112,6 +122,10 @@ impl<const N: usize> Model<N> {
     const DIMENSION_OK: () = assert!(N > 0 && N <= MAX_FEATURES, "N must be in 1..=32");
 
     /// Validate `params` and compile them for scoring.
+    ///
+    /// Fails exactly when [`ModelParams::validate`] does: the validation checks this very fold
+    /// (every element of `V` and `c` finite, the diagonal of `V` positive), with the same
+    /// operations, so a blob that decodes also compiles.
     pub fn new(params: ModelParams<N>) -> Result<Self, ModelError> {
         #[allow(clippy::let_unit_value)]
         let () = Self::DIMENSION_OK;
@@ -124,26 +138,17 @@ impl<const N: usize> Model<N> {
             .zip(&params.mean)
             .zip(&p.scale)
         {
-            *c = o + m / s;
+            *c = fold_center(*o, *m, *s);
         }
         let mut v = [[0.0f32; N]; N];
         let mut ln_norm = -0.5 * N as f64 * LN_2PI;
         for (i, (vrow, wrow)) in v.iter_mut().zip(&params.w).enumerate() {
             for (vij, (wij, sj)) in vrow.iter_mut().zip(wrow.iter().zip(&p.scale)).take(i + 1) {
-                *vij = wij * sj;
-            }
-            if vrow.iter().any(|x| !x.is_finite()) {
-                return Err(ModelError::Overflow);
+                *vij = fold_factor(*wij, *sj);
             }
             if let Some(d) = vrow.get(i) {
-                if *d <= 0.0 {
-                    return Err(ModelError::Overflow);
-                }
                 ln_norm += libm::log(f64::from(*d));
             }
-        }
-        if center.iter().any(|c| !c.is_finite()) {
-            return Err(ModelError::Overflow);
         }
         Ok(Self {
             params,
@@ -273,7 +278,12 @@ impl<const N: usize> Model<N> {
     /// Score a reading and split d² into per-feature contributions.
     ///
     /// The contributions are accumulated in `f64` (software on an FPU-less or single-precision
-    /// core, but only needed when an alarm is raised), then rounded to `f32`.
+    /// core, but only needed when an alarm is raised), then rounded to `f32`. They cannot overflow
+    /// `f64` (each is at most about 10⁹⁸ for finite inputs), but they can leave `f32` while their
+    /// sum, d², stays inside it (large terms of opposite sign that cancel). Then there is no
+    /// faithful `f32` split, and this returns [`ReadingFault::ContributionOverflow`] rather than
+    /// an infinite contribution; [`Model::score`] still scores the reading. Every contribution
+    /// returned is finite.
     pub fn explain(&self, x: &[f32; N]) -> Result<Explained<N>, ReadingFault> {
         let d = self.deviation(x)?;
         let (z, d2) = self.project(&d);
@@ -287,6 +297,9 @@ impl<const N: usize> Model<N> {
         let mut contributions = [0.0f32; N];
         for ((c, dj), bj) in contributions.iter_mut().zip(&d).zip(&back) {
             *c = (f64::from(*dj) * bj) as f32;
+            if !c.is_finite() {
+                return Err(ReadingFault::ContributionOverflow);
+            }
         }
         Ok(Explained {
             score,
@@ -393,6 +406,33 @@ mod tests {
         assert_eq!(e.score.d2.to_bits(), s.d2.to_bits());
         let sum: f32 = e.contributions.iter().sum();
         assert!(((sum - s.d2) / s.d2).abs() < 1e-5);
+    }
+
+    /// Contributions of opposite sign beyond f32 that cancel to a finite d²: N = 2,
+    /// W₁₀ = −2⁴⁰, x = (2⁴⁰, 2⁸⁰ + 2⁵⁷). Then z = (2⁴⁰, 2⁵⁷) exactly, d² = 2⁸⁰ + 2¹¹⁴, but the
+    /// contributions are about ∓2¹³⁷, beyond f32's 2¹²⁸.
+    #[test]
+    fn contributions_beyond_f32_are_a_fault_not_infinity() {
+        let two40 = 2.0f32.powi(40);
+        let m = Model::<2>::new(ModelParams {
+            meta: ModelMeta::default(),
+            preprocess: Preprocess::identity(),
+            mean: [0.0; 2],
+            w: [[1.0, 0.0], [-two40, 1.0]],
+            thresholds: Thresholds {
+                alarm: 9.0,
+                clear: 4.0,
+            },
+            policy: AlarmPolicy::default(),
+        })
+        .unwrap();
+        let x = [two40, 2.0f32.powi(80) + 2.0f32.powi(57)];
+        let s = m.score(&x).unwrap();
+        assert_eq!(s.d2, 2.0f32.powi(80) + 2.0f32.powi(114));
+        assert_eq!(m.explain(&x), Err(ReadingFault::ContributionOverflow));
+        // A reading of the same model whose contributions fit is explained, finitely.
+        let e = m.explain(&[1.0, two40]).unwrap();
+        assert!(e.contributions.iter().all(|c| c.is_finite()));
     }
 
     #[test]

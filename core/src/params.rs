@@ -146,7 +146,9 @@ pub enum ModelError {
     ThresholdOrder,
     /// A policy run length is outside `1..=MAX_RUN`.
     PolicyRange,
-    /// Folding the scale into `W` overflowed `f32`.
+    /// The folded form a [`crate::Model`] scores with leaves the range of `f32`: an element of
+    /// `W · diag(scale)` or of the centre `offset + mean / scale` is not finite, or a diagonal
+    /// element of `W · diag(scale)` underflows to zero.
     Overflow,
 }
 
@@ -201,7 +203,9 @@ impl fmt::Display for ModelError {
             ModelError::PolicyRange => {
                 write!(f, "raise_after and clear_after must lie in 1..={MAX_RUN}")
             }
-            ModelError::Overflow => f.write_str("folding the scale into W overflows f32"),
+            ModelError::Overflow => f.write_str(
+                "folding the scale into W, or the mean into the offset, leaves the range of f32",
+            ),
         }
     }
 }
@@ -218,8 +222,24 @@ fn finite(values: &[f32], field: Field) -> Result<(), ModelError> {
     }
 }
 
+/// `W[i][j] · scale[j]`, one element of the factor in the reading's units. The one definition of
+/// the fold, shared by [`ModelParams::validate`] and [`crate::Model::new`], so that what the one
+/// accepts the other builds.
+#[inline(always)]
+pub(crate) fn fold_factor(w: f32, scale: f32) -> f32 {
+    w * scale
+}
+
+/// `offset + mean / scale`, one element of the centre in the reading's units (see
+/// [`fold_factor`]).
+#[inline(always)]
+pub(crate) fn fold_center(offset: f32, mean: f32, scale: f32) -> f32 {
+    offset + mean / scale
+}
+
 impl<const N: usize> ModelParams<N> {
-    /// Check every rule a [`crate::Model`] relies on.
+    /// Check every rule a [`crate::Model`] relies on, the fold into its scoring form included:
+    /// `Ok` here means [`crate::Model::new`] succeeds.
     pub fn validate(&self) -> Result<(), ModelError> {
         if N == 0 || N > MAX_FEATURES {
             return Err(ModelError::Dimension { n: N });
@@ -259,6 +279,21 @@ impl<const N: usize> ModelParams<N> {
         let run = 1..=MAX_RUN;
         if !run.contains(&self.policy.raise_after) || !run.contains(&self.policy.clear_after) {
             return Err(ModelError::PolicyRange);
+        }
+        // The fold `Model::new` does, element by element without keeping it: every element of
+        // `W · diag(scale)` finite and its diagonal still positive, every centre finite.
+        for (i, row) in self.w.iter().enumerate() {
+            for (j, (wij, sj)) in row.iter().zip(&p.scale).take(i + 1).enumerate() {
+                let v = fold_factor(*wij, *sj);
+                if !v.is_finite() || (j == i && v <= 0.0) {
+                    return Err(ModelError::Overflow);
+                }
+            }
+        }
+        for ((o, m), s) in p.offset.iter().zip(&self.mean).zip(&p.scale) {
+            if !fold_center(*o, *m, *s).is_finite() {
+                return Err(ModelError::Overflow);
+            }
         }
         Ok(())
     }
@@ -322,5 +357,36 @@ mod tests {
         let mut p = good();
         p.policy.clear_after = MAX_RUN + 1;
         assert_eq!(p.validate(), Err(ModelError::PolicyRange));
+    }
+
+    /// Parameters that are each finite but whose fold into the scoring form is not: `validate`
+    /// (and so `blob::encode` and `blob::decode`) refuses them, as `Model::new` does.
+    #[test]
+    fn rejects_a_fold_that_leaves_f32() {
+        // W₀₀ · scale₀ = 1e30 · 1e30 overflows f32.
+        let mut p = good();
+        p.preprocess.scale = [1.0e30, 1.0];
+        p.w[0][0] = 1.0e30;
+        assert_eq!(p.validate(), Err(ModelError::Overflow));
+        // An element below the diagonal: W₁₀ · scale₀.
+        let mut p = good();
+        p.preprocess.scale = [1.0e30, 1.0];
+        p.w[1][0] = -1.0e10;
+        assert_eq!(p.validate(), Err(ModelError::Overflow));
+        // A diagonal element that underflows to zero: 1e-30 · 1e-30.
+        let mut p = good();
+        p.preprocess.scale = [1.0, 1.0e-30];
+        p.w[1][1] = 1.0e-30;
+        assert_eq!(p.validate(), Err(ModelError::Overflow));
+        // The centre offset + mean / scale: 3e38 + 3e38 overflows.
+        let mut p = good();
+        p.preprocess.offset = [3.0e38, 0.0];
+        p.mean = [3.0e38, 0.0];
+        assert_eq!(p.validate(), Err(ModelError::Overflow));
+        // And one step inside the range is accepted.
+        let mut p = good();
+        p.preprocess.scale = [1.0e19, 1.0];
+        p.w[0][0] = 1.0e19;
+        assert_eq!(p.validate(), Ok(()));
     }
 }

@@ -1,7 +1,11 @@
 //! Cross-crate and outside-reference tests for Ellipsoid live in `tests/tests/`.
 //!
 //! This library holds the small helpers they share: building core models from an `f64` mean and
-//! covariance through nalgebra's Cholesky, the way the trainer does.
+//! covariance through nalgebra's Cholesky, the way the trainer does; the golden models
+//! ([`golden`]); and the pinned-scores files ([`pins`]).
+
+pub mod golden;
+pub mod pins;
 
 use ellipsoid_core::{AlarmPolicy, ModelMeta, ModelParams, Preprocess, Thresholds};
 use nalgebra::{DMatrix, DVector};

@@ -161,7 +161,16 @@ proptest! {
         b.extend_from_slice(&crc.to_le_bytes());
         match blob::decode::<2>(&b) {
             Ok(p) => prop_assert!(p.validate().is_ok()),
-            Err(e) => prop_assert!(matches!(e, DecodeError::Body | DecodeError::TrailingBytes | DecodeError::Invalid(_))),
+            Err(e) => {
+                let body_or_rule = matches!(
+                    e,
+                    DecodeError::Body
+                        | DecodeError::NonCanonical { .. }
+                        | DecodeError::TrailingBytes
+                        | DecodeError::Invalid(_)
+                );
+                prop_assert!(body_or_rule, "{:?}", e);
+            }
         }
     }
 }

@@ -2,32 +2,11 @@
 //! fails here loudly. `core/FORMAT.md` walks through these same bytes.
 
 use ellipsoid_core::blob;
-use ellipsoid_core::{AlarmPolicy, Model, ModelMeta, ModelParams, Preprocess, Thresholds};
+use ellipsoid_core::{Model, ModelParams};
 
 fn golden_params() -> ModelParams<2> {
-    ModelParams {
-        meta: ModelMeta {
-            model_id: 0x00C0_FFEE,
-            trained_at: 1_767_225_600, // 2026-01-01T00:00:00Z
-            sequence: 3,
-        },
-        preprocess: Preprocess {
-            log_mask: 0b10,
-            offset: [12.5, 1.0],
-            scale: [0.5, 2.0],
-        },
-        mean: [0.0, 0.25],
-        w: [[1.0, 0.0], [-0.5, 1.5]],
-        thresholds: Thresholds {
-            alarm: 13.8155,
-            clear: 9.2103,
-        },
-        policy: AlarmPolicy {
-            raise_after: 3,
-            clear_after: 300,
-            latch: true,
-        },
-    }
+    // The parameters of FORMAT.md's worked example, shared with the pinned scores.
+    ellipsoid_tests::golden::golden_n2()
 }
 
 const GOLDEN: [u8; 72] = [

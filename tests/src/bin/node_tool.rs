@@ -84,6 +84,27 @@ enum Cmd {
         #[arg(long, value_delimiter = ',')]
         roots: Vec<String>,
     },
+    /// Write the blob and the reading table of a pinned-scores file (tests/golden/*.pins).
+    PinsLoad {
+        /// The pins file.
+        #[arg(long)]
+        pins: PathBuf,
+        /// The blob to write.
+        #[arg(long)]
+        blob: PathBuf,
+        /// The reading table to write.
+        #[arg(long)]
+        table: PathBuf,
+    },
+    /// Compare the device's d² bits and faults with a pinned-scores file.
+    PinsCompare {
+        /// The pins file.
+        #[arg(long)]
+        pins: PathBuf,
+        /// The device's semihosting output.
+        #[arg(long)]
+        device: PathBuf,
+    },
     /// Write the "Firmware figures" section of the README from measured data.
     Figures {
         /// The node image for the Cortex-M4F.
@@ -130,6 +151,8 @@ fn main() -> Result<()> {
             unusable.as_deref(),
         ),
         Cmd::NoModel { device } => no_model(&device),
+        Cmd::PinsLoad { pins, blob, table } => pins_load(&pins, &blob, &table),
+        Cmd::PinsCompare { pins, device } => pins_compare(&pins, &device),
         Cmd::Reach { elf, roots } => reach(&elf, &roots),
         Cmd::Figures {
             elf,
@@ -248,6 +271,8 @@ struct Row {
     fault: bool,
     events: String,
     top: Option<String>,
+    /// The device's `cause=` of a fault (the replay has none).
+    cause: Option<String>,
 }
 
 fn kv<'a>(line: &'a str, key: &str) -> Option<&'a str> {
@@ -308,6 +333,7 @@ fn parse_device(path: &Path) -> Result<Device> {
                     ev.to_string()
                 },
                 top: kv(line, "top").map(str::to_string),
+                cause: kv(line, "cause").map(str::to_string),
             });
         } else if let Some(rest) = line.strip_prefix("pin ") {
             let mut w = rest.split(' ');
@@ -377,6 +403,7 @@ fn parse_replay(path: &Path) -> Result<Vec<Row>> {
             fault: field(cf, "fault")?,
             events: get(ce).to_string(),
             top: Some(get(ct).to_string()).filter(|s| !s.is_empty()),
+            cause: None,
         });
     }
     Ok(rows)
@@ -555,6 +582,99 @@ fn no_model(device: &Path) -> Result<()> {
         "{d}: {unusable} slots reported unusable, expected 2"
     );
     println!("no-model: both slots reported unusable, fault line on, alarm off, nothing scored");
+    Ok(())
+}
+
+/// A pinned-scores file, with the dimension its blob states.
+fn read_pins(path: &Path) -> Result<(usize, ellipsoid_tests::pins::Pins)> {
+    let text = read_text(path)?;
+    let blob_hex = text
+        .lines()
+        .find_map(|l| l.strip_prefix("blob "))
+        .ok_or_else(|| anyhow!("{}: no blob line", path.display()))?;
+    let n = usize::from_str_radix(blob_hex.get(10..12).unwrap_or("zz"), 16)
+        .with_context(|| format!("{}: the blob line has no header", path.display()))?;
+    let pins =
+        ellipsoid_tests::pins::parse(&text, n).map_err(|e| anyhow!("{}: {e}", path.display()))?;
+    Ok((n, pins))
+}
+
+fn pins_load(path: &Path, blob: &Path, table: &Path) -> Result<()> {
+    let (n, pins) = read_pins(path)?;
+    let mut bytes = table_header(n as u32, pins.pins.len() as u32).to_vec();
+    for p in &pins.pins {
+        for v in &p.x {
+            bytes.extend_from_slice(&v.to_bits().to_le_bytes());
+        }
+    }
+    write_atomic(blob, &pins.blob)?;
+    write_atomic(table, &bytes)?;
+    println!(
+        "pins-load: {} readings of {n} features from {} -> {}, {}",
+        pins.pins.len(),
+        path.display(),
+        blob.display(),
+        table.display()
+    );
+    Ok(())
+}
+
+fn pins_compare(path: &Path, device: &Path) -> Result<()> {
+    use ellipsoid_tests::pins::Expect;
+    let (_, pins) = read_pins(path)?;
+    let dev = parse_device(device)?;
+    let d = device.display();
+    ensure!(
+        has_line(&dev, "model slot=A "),
+        "{d}: the device did not use slot A"
+    );
+    ensure!(has_line(&dev, "end "), "{d}: the run did not finish");
+    ensure!(
+        dev.rows.len() == pins.pins.len(),
+        "{d}: the device reported {} readings, {} pins {}",
+        dev.rows.len(),
+        path.display(),
+        pins.pins.len()
+    );
+    let mut wrong = Vec::new();
+    let (mut bits, mut faults) = (0usize, 0usize);
+    for (row, pin) in dev.rows.iter().zip(&pins.pins) {
+        let got = match (&row.d2_bits, &row.cause) {
+            (Some(b), _) => Expect::D2(*b),
+            (None, Some(c)) => Expect::Fault(c.clone()),
+            (None, None) => Expect::Fault("(no cause)".to_string()),
+        };
+        if row.index as usize != pin.index || got != pin.expect {
+            wrong.push(format!(
+                "reading {}: pinned {}, device reading {} {got}",
+                pin.index, pin.expect, row.index
+            ));
+        } else if matches!(got, Expect::D2(_)) {
+            bits += 1;
+        } else {
+            faults += 1;
+        }
+        if row.fault != matches!(pin.expect, Expect::Fault(_)) {
+            wrong.push(format!(
+                "reading {}: fault line {} for {}",
+                pin.index, row.fault as u8, pin.expect
+            ));
+        }
+    }
+    if !wrong.is_empty() {
+        for w in &wrong {
+            eprintln!("MISMATCH {w}");
+        }
+        bail!(
+            "{} mismatches between the device and {}",
+            wrong.len(),
+            path.display()
+        );
+    }
+    println!(
+        "pins-compare: {}: d2 bits as pinned on all {bits} scored readings, the pinned fault on all {faults} others",
+        path.display()
+    );
     Ok(())
 }
 
@@ -971,6 +1091,58 @@ mod tests {
         let r = analyse(DIS, &roots(&["::dynamic"])).unwrap();
         assert_eq!(r.indirect, ["app::dynamic"]);
         assert!(analyse(DIS, &roots(&["::missing"])).is_err());
+    }
+
+    /// A device log that reports exactly the pins of `golden-n5.pins`, with `edit` applied to
+    /// its reading lines.
+    fn pinned_log(edit: impl Fn(usize, String) -> String) -> String {
+        use ellipsoid_tests::pins::Expect;
+        let text = include_str!("../../golden/golden-n5.pins");
+        let pins = ellipsoid_tests::pins::parse(text, 5).unwrap();
+        let mut log = String::from("boot ellipsoid-node n=5\nmodel slot=A seq=1 id=0x005eed05\n");
+        for p in &pins.pins {
+            let line = match &p.expect {
+                Expect::D2(b) => {
+                    format!("r {} d2={b:08x} v=below alarm=0 fault=0 event=-", p.index)
+                }
+                Expect::Fault(c) => format!(
+                    "r {} d2=- v=fault alarm=0 fault=1 event=fault cause={c}",
+                    p.index
+                ),
+            };
+            log.push_str(&edit(p.index, line));
+            log.push('\n');
+        }
+        log.push_str("end scored=1 faults=1\n");
+        log
+    }
+
+    fn compare_log(name: &str, log: &str) -> Result<()> {
+        let dir = std::env::temp_dir().join(format!("node-tool-test-{}", std::process::id()));
+        fs::create_dir_all(&dir).unwrap();
+        let dev = dir.join(name);
+        fs::write(&dev, log).unwrap();
+        let pins = Path::new(env!("CARGO_MANIFEST_DIR")).join("golden/golden-n5.pins");
+        let r = pins_compare(&pins, &dev);
+        let _ = fs::remove_file(&dev);
+        r
+    }
+
+    #[test]
+    fn pins_compare_passes_the_pins_and_refuses_one_changed_bit_or_cause() {
+        compare_log("same.log", &pinned_log(|_, l| l)).unwrap();
+        let flipped = pinned_log(|i, l| {
+            if i == 0 {
+                l.replace("d2=391d337d", "d2=391d337c")
+            } else {
+                l
+            }
+        });
+        assert!(compare_log("flipped.log", &flipped).is_err());
+        let cause = pinned_log(|_, l| l.replace("cause=log-domain:3", "cause=not-finite:0"));
+        assert!(compare_log("cause.log", &cause).is_err());
+        let short = pinned_log(|i, l| if i == 29 { String::new() } else { l });
+        assert!(compare_log("short.log", &short).is_err());
     }
 
     #[test]
