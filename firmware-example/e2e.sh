@@ -2,13 +2,13 @@
 # The firmware's end-to-end check in the emulator, and the figures of firmware-example/README.md.
 #
 #  1. fit the demo model with the trainer and write its blob (and a second model, sequence 2);
-#  2. build the firmware in release mode (Cortex-M4F, and the Cortex-M0+ image for its size);
+#  2. build the firmware with the firmware profile (Cortex-M4F, and the Cortex-M0+ image for its size);
 #  3. run it in qemu-system-arm (mps2-an386) with the blob in slot A and the demo's readings loaded;
 #  4. check that the device's d² is bit-identical to `ellipsoid replay`, and its alarm timeline,
 #     pin changes and final LED levels identical;
 #  5. run it with slot A corrupted and a valid model in B (B must be used), with a torn A and a newer
 #     B, and with both slots corrupt (fault line on, nothing scored);
-#  6. look for panic machinery on the decode and score paths of the release image;
+#  6. look for panic machinery on the decode and score paths of the firmware image;
 #  7. measure the cost of a score for N = 4, 8, 16 and write the figures into the README.
 #
 # Any failed check ends the script with a non-zero status. Nearly all its time is building (the
@@ -58,12 +58,12 @@ replay "$BLOB_A" "$READINGS" "$W/replay-a.csv"
 replay "$BLOB_B" "$READINGS" "$W/replay-b.csv"
 
 say "2. the firmware, release"
-FW="cargo build -q --release -p ellipsoid-firmware-example --features mps2-an386"
+FW="cargo build -q --profile firmware -p ellipsoid-firmware-example --features mps2-an386"
 $FW --target thumbv7em-none-eabihf
 $FW --target thumbv6m-none-eabi --bin ellipsoid-node
-ELF=target/thumbv7em-none-eabihf/release/ellipsoid-node
-COST_ELF=target/thumbv7em-none-eabihf/release/score-cost
-ELF_M0=target/thumbv6m-none-eabi/release/ellipsoid-node
+ELF=target/thumbv7em-none-eabihf/firmware/ellipsoid-node
+COST_ELF=target/thumbv7em-none-eabihf/firmware/score-cost
+ELF_M0=target/thumbv6m-none-eabi/firmware/ellipsoid-node
 arm-none-eabi-size "$ELF" "$ELF_M0"
 
 sym() { arm-none-eabi-nm "$ELF" | awk -v s="$1" '$3 == s { print "0x" $1 }'; }

@@ -921,7 +921,7 @@ fn figures(
     writeln!(s, "### Firmware figures\n")?;
     writeln!(
         s,
-        "Measured by `firmware-example/e2e.sh` on the release images (`opt-level = 3`, LTO).\n"
+        "Measured by `firmware-example/e2e.sh` on the images of the `firmware` profile (`opt-level = 3`, LTO, one codegen unit).\n"
     )?;
     writeln!(s, "**Flash and RAM** (`arm-none-eabi-size -A`; the vector table counted in `.text`). The core's share is the")?;
     writeln!(s, "symbols of `ellipsoid_core` and the crates it brings (postcard, serde, crc, heapless, libm) plus the")?;
