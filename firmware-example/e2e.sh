@@ -42,8 +42,9 @@ cargo build -q --release -p ellipsoid-trainer
 ELLIPSOID=target/release/ellipsoid
 $ELLIPSOID demo --out "$W/demo" --quiet
 [ -s "$W/demo/baseline.csv" ] || fail "the demo wrote no baseline.csv to fit a second model from"
-# A second model of the same machine, with a higher sequence number, for slot B.
-$ELLIPSOID fit "$W/demo/baseline.csv" --out "$W/model-b.blob" --sequence 2
+# A second model of the same machine, with a higher sequence number, for slot B. A fixed training
+# time keeps its bytes (and so every device log) the same from run to run.
+$ELLIPSOID fit "$W/demo/baseline.csv" --out "$W/model-b.blob" --sequence 2 --trained-at 1772452800
 replay() { $ELLIPSOID replay --model "$1" --input "$2" --out "$3"; }
 BLOB_B="$W/model-b.blob"
 BLOB_A="$W/demo/model.blob"
