@@ -505,3 +505,243 @@ fn fit_options_f1_robust_shrinkage_and_log() {
         .failure()
         .stderr(predicate::str::contains("--holdout"));
 }
+
+fn bytes(p: &Path) -> Vec<u8> {
+    std::fs::read(p).unwrap()
+}
+
+/// The names of the files in `dir`, sorted.
+fn listing(dir: &Path) -> Vec<String> {
+    let mut v: Vec<String> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    v.sort();
+    v
+}
+
+/// `assert` failed, its stderr names `a` and `b`, and `keep` still has the bytes it had.
+fn refused(cmd: &mut Command, a: &str, b: &str, keep: &Path, before: &[u8]) {
+    let out = cmd.assert().failure();
+    let stderr = String::from_utf8_lossy(&out.get_output().stderr).to_string();
+    assert!(stderr.contains("same file"), "{stderr}");
+    assert!(
+        stderr.contains(a) && stderr.contains(b),
+        "`{a}`, `{b}` not in {stderr}"
+    );
+    assert_eq!(
+        bytes(keep),
+        before,
+        "{} was changed: {stderr}",
+        keep.display()
+    );
+}
+
+#[test]
+fn no_output_ever_replaces_an_input() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let base = write(d, "t.csv", &baseline_csv(300, 8));
+    let before = bytes(&base);
+    let s = |p: &Path| p.to_str().unwrap().to_string();
+    // fit: --out is the baseline, also spelled another way and through a hard link.
+    let dotted = d.join(".").join("t.csv");
+    let hard = d.join("hard.csv");
+    std::fs::hard_link(&base, &hard).unwrap();
+    for out in [&base, &dotted, &hard] {
+        refused(
+            fit(&base, out).args(["--quiet"]),
+            &s(out),
+            &s(&base),
+            &base,
+            &before,
+        );
+    }
+    // --report is the baseline.
+    refused(
+        fit(&base, &d.join("m.blob")).args(["--quiet", "--report", &s(&base)]),
+        "--report",
+        &s(&base),
+        &base,
+        &before,
+    );
+    assert!(!d.join("m.blob").exists());
+    // A baseline named pump.json and --out pump.blob: the card would overwrite the baseline.
+    let pump = write(d, "pump.json", &baseline_csv(300, 9));
+    let pump_before = bytes(&pump);
+    refused(
+        fit(&pump, &d.join("pump.blob")).args(["--quiet"]),
+        "model card",
+        &s(&pump),
+        &pump,
+        &pump_before,
+    );
+    assert!(!d.join("pump.blob").exists());
+    // --out is the --validation file.
+    let val = write(
+        d,
+        "val.csv",
+        "current_a,pressure_bar,temp_c,label\n10,3,40,0\n13,1,40,1\n",
+    );
+    let val_before = bytes(&val);
+    refused(
+        fit(&base, &val).args(["--quiet", "--validation", &s(&val)]),
+        "--validation",
+        &s(&val),
+        &val,
+        &val_before,
+    );
+    // replay --out is the input, the blob or the card; evaluate --report is the input or the blob.
+    let model = fit_ok(d);
+    let card = model.with_extension("json");
+    let readings = write(
+        d,
+        "r.csv",
+        "current_a,pressure_bar,temp_c,label\n10,3,40,0\n13,1,40,1\n",
+    );
+    for (victim, role) in [
+        (&readings, "--input"),
+        (&model, "--model"),
+        (&card, "model card"),
+    ] {
+        let keep = bytes(victim);
+        let mut c = ellipsoid();
+        c.args(["replay", "--model", &s(&model), "--input", &s(&readings)])
+            .args(["--out", &s(victim), "--quiet"]);
+        refused(&mut c, role, &s(victim), victim, &keep);
+    }
+    for (victim, role) in [(&readings, "--input"), (&model, "--model")] {
+        let keep = bytes(victim);
+        let mut c = ellipsoid();
+        c.args(["evaluate", "--model", &s(&model), "--input", &s(&readings)])
+            .args(["--report", &s(victim), "--quiet"]);
+        refused(&mut c, role, &s(victim), victim, &keep);
+    }
+}
+
+#[test]
+fn fit_writes_all_its_outputs_or_none() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = fit_ok(dir.path());
+    let card = model.with_extension("json");
+    let (blob_before, card_before) = (bytes(&model), bytes(&card));
+    let other = write(dir.path(), "other.csv", &baseline_csv(1500, 77));
+    fit(&other, &model)
+        .args(["--quiet", "--report", "/proc/r.html"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("/proc"));
+    assert_eq!(bytes(&model), blob_before, "the blob was replaced");
+    assert_eq!(bytes(&card), card_before, "the card was replaced");
+    assert_eq!(
+        listing(dir.path()),
+        ["base.csv", "m.blob", "m.json", "other.csv"]
+    );
+}
+
+/// Many fits at once to one --out, each from its own baseline with its own model id: afterwards
+/// the blob and the card always come from the same fit, and no temporary file is left.
+#[test]
+fn concurrent_fits_to_one_out_leave_a_matching_blob_and_card() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let bin = assert_cmd::cargo::cargo_bin("ellipsoid");
+    let out = d.join("m.blob");
+    let bases: Vec<PathBuf> = (0..6)
+        .map(|k| {
+            write(
+                d,
+                &format!("b{k}.csv"),
+                &baseline_csv(400 + 50 * k, 100 + k as u64),
+            )
+        })
+        .collect();
+    for round in 0..8 {
+        let children: Vec<_> = bases
+            .iter()
+            .enumerate()
+            .map(|(k, b)| {
+                std::process::Command::new(&bin)
+                    .args(["fit", b.to_str().unwrap(), "--out", out.to_str().unwrap()])
+                    .args([
+                        "--quiet",
+                        "--holdout",
+                        "0",
+                        "--model-id",
+                        &(1000 + k).to_string(),
+                    ])
+                    .stdout(std::process::Stdio::null())
+                    .spawn()
+                    .unwrap()
+            })
+            .collect();
+        for mut c in children {
+            assert!(c.wait().unwrap().success());
+        }
+        let blob = bytes(&out);
+        let card: serde_json::Value =
+            serde_json::from_slice(&bytes(&out.with_extension("json"))).unwrap();
+        let crc = u32::from_le_bytes(blob[blob.len() - 4..].try_into().unwrap());
+        assert_eq!(
+            card["blob_crc"].as_u64().unwrap(),
+            u64::from(crc),
+            "round {round}"
+        );
+        let k = bases
+            .iter()
+            .position(|b| card["trained_on"].as_str().unwrap() == b.to_str().unwrap())
+            .expect("the card names one of the baselines");
+        let id = blob::decode::<3>(&blob).unwrap().meta.model_id;
+        assert_eq!(
+            id,
+            1000 + k as u32,
+            "round {round}: blob of one fit, card of another"
+        );
+    }
+    let litter: Vec<String> = listing(d)
+        .into_iter()
+        .filter(|n| n.starts_with('.'))
+        .collect();
+    assert!(litter.is_empty(), "{litter:?}");
+}
+
+#[test]
+fn edited_feature_names_in_the_card_are_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = fit_ok(dir.path());
+    let card = model.with_extension("json");
+    let text = std::fs::read_to_string(&card).unwrap();
+    let swapped = text
+        .replace("\"current_a\"", "\"@\"")
+        .replace("\"temp_c\"", "\"current_a\"")
+        .replace("\"@\"", "\"temp_c\"");
+    assert_ne!(text, swapped);
+    std::fs::write(&card, swapped).unwrap();
+    let readings = write(
+        dir.path(),
+        "r.csv",
+        "current_a,pressure_bar,temp_c,label\n10,3,40,0\n13,1,40,1\n",
+    );
+    let m = model.to_str().unwrap();
+    let r = readings.to_str().unwrap();
+    let o = dir.path().join("o.csv");
+    ellipsoid()
+        .args([
+            "replay",
+            "--model",
+            m,
+            "--input",
+            r,
+            "--out",
+            o.to_str().unwrap(),
+        ])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("were changed after fit"));
+    assert!(!o.exists());
+    ellipsoid()
+        .args(["evaluate", "--model", m, "--input", r])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("were changed after fit"));
+}
