@@ -705,6 +705,56 @@ fn concurrent_fits_to_one_out_leave_a_matching_blob_and_card() {
     assert!(litter.is_empty(), "{litter:?}");
 }
 
+/// The 500-row baseline with `cell` as `pressure_bar` on file line 300.
+fn with_cell(cell: &str) -> String {
+    let mut lines: Vec<String> = baseline_csv(500, 21).lines().map(str::to_string).collect();
+    let mut cells: Vec<String> = lines[299].split(',').map(str::to_string).collect();
+    cells[2] = cell.to_string();
+    lines[299] = cells.join(",");
+    lines.join("\n") + "\n"
+}
+
+#[test]
+fn a_gross_outlier_in_the_baseline_is_refused_at_its_line() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("m.blob");
+    for cell in ["1e39", "1e30", "1e308", "-9999"] {
+        let base = write(dir.path(), "base.csv", &with_cell(cell));
+        fit(&base, &out)
+            .args(["--quiet"])
+            .assert()
+            .failure()
+            .stderr(predicate::str::contains(
+                "base.csv:300: column `pressure_bar`",
+            ))
+            .stderr(predicate::str::contains("robust standard deviations"))
+            .stderr(predicate::str::contains("--skip-bad-rows"))
+            .stderr(predicate::str::contains("--robust"))
+            .stderr(predicate::str::contains("constant").not());
+        assert!(!out.exists(), "{cell}");
+    }
+    // --skip-bad-rows skips the row, and the model sees pressure as it is (sd about 0.35).
+    let base = write(dir.path(), "base.csv", &with_cell("1e30"));
+    let a = fit(&base, &out)
+        .args(["--quiet", "--json", "--skip-bad-rows", "--holdout", "0"])
+        .assert()
+        .success();
+    let v: serde_json::Value = serde_json::from_slice(&a.get_output().stdout).unwrap();
+    assert_eq!(v["rows_used"], 499, "{v}");
+    let var = v["covariance"][4].as_f64().unwrap();
+    assert!(var > 0.05 && var < 0.3, "pressure variance {var}");
+    // --robust sets the row aside and says so.
+    let a = fit(&base, &out)
+        .args(["--quiet", "--json", "--robust", "--holdout", "0"])
+        .assert()
+        .success();
+    let v: serde_json::Value = serde_json::from_slice(&a.get_output().stdout).unwrap();
+    let set_aside: Vec<u64> = serde_json::from_value(v["robust_set_aside_lines"].clone()).unwrap();
+    assert!(set_aside.contains(&300), "{set_aside:?}");
+    let var = v["covariance"][4].as_f64().unwrap();
+    assert!(var < 0.3, "pressure variance {var}");
+}
+
 #[test]
 fn edited_feature_names_in_the_card_are_refused() {
     let dir = tempfile::tempdir().unwrap();
@@ -744,4 +794,122 @@ fn edited_feature_names_in_the_card_are_refused() {
         .assert()
         .failure()
         .stderr(predicate::str::contains("were changed after fit"));
+}
+
+#[test]
+fn a_label_column_in_the_baseline_is_warned_about() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut s = String::from("current_a,pressure_bar,temp_c,label\n");
+    for (i, line) in baseline_csv(400, 31).lines().skip(1).enumerate() {
+        let cells: Vec<&str> = line.split(',').collect();
+        let _ = writeln!(
+            s,
+            "{},{},{},{}",
+            cells[1],
+            cells[2],
+            cells[3],
+            u8::from(i % 9 == 0)
+        );
+    }
+    let base = write(dir.path(), "labelled.csv", &s);
+    let a = fit(&base, &dir.path().join("m.blob"))
+        .args(["--quiet", "--json"])
+        .assert()
+        .success();
+    let v: serde_json::Value = serde_json::from_slice(&a.get_output().stdout).unwrap();
+    let w = v["warnings"].to_string();
+    assert!(w.contains("`label` holds only the values 0 and 1"), "{w}");
+    assert!(!w.contains("`current_a` holds"), "{w}");
+}
+
+#[test]
+fn replay_names_the_bad_input_cell_first() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = fit_ok(dir.path());
+    let readings = write(
+        dir.path(),
+        "r.csv",
+        "current_a,pressure_bar,temp_c\n10,3,40\n10,x7,40\n",
+    );
+    let out = dir.path().join("out.csv");
+    let a = ellipsoid()
+        .args(["replay", "--model", model.to_str().unwrap()])
+        .args([
+            "--input",
+            readings.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ])
+        .assert()
+        .failure();
+    let stderr = String::from_utf8_lossy(&a.get_output().stderr).to_string();
+    let first = stderr.lines().next().unwrap();
+    assert!(
+        first.contains("r.csv:3: column `pressure_bar`: `x7`"),
+        "{stderr}"
+    );
+    assert!(!stderr.contains("while writing"), "{stderr}");
+    assert!(!out.exists());
+}
+
+#[test]
+fn a_column_f32_cannot_resolve_is_explained() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("m.blob");
+    let mut rng = ChaCha8Rng::seed_from_u64(41);
+    // sd 2 around 1e9, and epoch milliseconds at one reading a second.
+    let mut a = String::from("a,b,big\n");
+    let mut b = String::from("a,b,epoch_ms\n");
+    for i in 0..500u64 {
+        let x: f64 = rng.random_range(0.0..1.0);
+        let y: f64 = rng.random_range(0.0..1.0);
+        let _ = writeln!(
+            a,
+            "{x},{y},{}",
+            1e9 + rng.random_range(-3.5f64..3.5).round()
+        );
+        let _ = writeln!(b, "{x},{y},{}", 1_767_225_600_000 + 1000 * i);
+    }
+    for (name, text, col) in [("big.csv", a, "`big`"), ("ms.csv", b, "`epoch_ms`")] {
+        let base = write(dir.path(), name, &text);
+        fit(&base, &out)
+            .args(["--quiet"])
+            .assert()
+            .failure()
+            .stderr(predicate::str::contains(col))
+            .stderr(predicate::str::contains("f32"))
+            .stderr(predicate::str::contains("Subtract an offset"))
+            .stderr(predicate::str::contains("constant feature(s)").not());
+    }
+}
+
+#[test]
+fn long_cells_are_cut_and_cr_only_files_are_named() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("m.blob");
+    let mut lines: Vec<String> = baseline_csv(50, 2).lines().map(str::to_string).collect();
+    let huge = "9".repeat(100_000) + "x";
+    lines[4] = format!("2026-01-01T00:00:04Z,10.1,{huge},40");
+    let base = write(dir.path(), "long.csv", &lines.join("\n"));
+    let a = fit(&base, &out).args(["--quiet"]).assert().failure();
+    let stderr = String::from_utf8_lossy(&a.get_output().stderr).to_string();
+    assert!(stderr.len() < 600, "{} bytes of stderr", stderr.len());
+    assert!(
+        stderr.contains("long.csv:5: column `pressure_bar`"),
+        "{stderr}"
+    );
+    assert!(stderr.contains("… (100001 bytes)"), "{stderr}");
+    // Lines ended by a lone CR.
+    let cr = baseline_csv(50, 2).replace('\n', "\r");
+    let base = write(dir.path(), "mac.csv", &cr);
+    fit(&base, &out)
+        .args(["--quiet"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("mac.csv:1"))
+        .stderr(predicate::str::contains("lone carriage return"));
+    // CRLF is still read.
+    let crlf = baseline_csv(50, 2).replace('\n', "\r\n");
+    let base = write(dir.path(), "dos.csv", &crlf);
+    fit(&base, &out).args(["--quiet"]).assert().success();
 }
