@@ -13,8 +13,13 @@
 //!    row's byte offset, so the merged sample is the same whatever the number of threads.
 //! 4. [`Shrinkage::LedoitWolf`] and [`FitOptions::robust`] need every training row: in those
 //!    modes the threads also keep their rows, and memory grows with the row count (8 bytes a value).
-//! 5. Check the result: constant features and features that are linear combinations of others
-//!    are named in the error; fewer than `p + 1` rows is an error, fewer than `10 p` a warning.
+//! 5. Check the result: a gross outlier (a value more than [`GROSS_Z`] robust standard deviations
+//!    from its feature's median; each thread keeps every feature's minimum and maximum, and the
+//!    median and MAD come from the sample; see `outliers.rs`) is refused with its line, or skipped
+//!    in a second pass, or set aside before FAST-MCD; a feature of only 0 and 1 is warned about;
+//!    constant features, features `f32` cannot resolve at their magnitude and features that are
+//!    linear combinations of others are named in the error; fewer than `p + 1` rows is an error,
+//!    fewer than `10 p` a warning.
 //! 6. Factor the correlation matrix `R = L Lᵀ` (nalgebra's Cholesky) and keep `W = L⁻¹`.
 //!    The core's parameters are then: offset = mean, scale = 1/sd, mean in standardised space = 0,
 //!    and `w = W`. The device's `f32` arithmetic thus works on standardised numbers of order 1.
