@@ -637,6 +637,30 @@ fn fit_writes_all_its_outputs_or_none() {
         listing(dir.path()),
         ["base.csv", "m.blob", "m.json", "other.csv"]
     );
+    // A temporary file a killed run left an hour ago is removed by the next fit there; the
+    // report goes to another folder, and all three files are replaced.
+    let orphan = write(dir.path(), ".ellipsoid-Xk3Lq9.tmp", "half a blob");
+    let hour_ago = std::time::SystemTime::now() - std::time::Duration::from_secs(3600);
+    std::fs::File::options()
+        .write(true)
+        .open(&orphan)
+        .unwrap()
+        .set_modified(hour_ago)
+        .unwrap();
+    let elsewhere = tempfile::tempdir().unwrap();
+    let report = elsewhere.path().join("r.html");
+    fit(&other, &model)
+        .args(["--quiet", "--report", report.to_str().unwrap()])
+        .assert()
+        .success();
+    assert_ne!(bytes(&model), blob_before);
+    assert_ne!(bytes(&card), card_before);
+    assert!(report.exists());
+    assert_eq!(
+        listing(dir.path()),
+        ["base.csv", "m.blob", "m.json", "other.csv"]
+    );
+    assert_eq!(listing(elsewhere.path()), ["r.html"]);
 }
 
 /// Many fits at once to one --out, each from its own baseline with its own model id: afterwards
