@@ -64,6 +64,7 @@ fn quiet_on_closed_stdout() {
 /// Run the command line; errors are printed as `error: …` with their causes, and exit 1.
 pub fn main() -> ExitCode {
     quiet_on_closed_stdout();
+    crate::data::output::mark_start();
     let cli = Cli::parse();
     let result = match &cli.command {
         Command::Fit(a) => fit::run(a),

@@ -505,3 +505,435 @@ fn fit_options_f1_robust_shrinkage_and_log() {
         .failure()
         .stderr(predicate::str::contains("--holdout"));
 }
+
+fn bytes(p: &Path) -> Vec<u8> {
+    std::fs::read(p).unwrap()
+}
+
+/// The names of the files in `dir`, sorted.
+fn listing(dir: &Path) -> Vec<String> {
+    let mut v: Vec<String> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    v.sort();
+    v
+}
+
+/// `assert` failed, its stderr names `a` and `b`, and `keep` still has the bytes it had.
+fn refused(cmd: &mut Command, a: &str, b: &str, keep: &Path, before: &[u8]) {
+    let out = cmd.assert().failure();
+    let stderr = String::from_utf8_lossy(&out.get_output().stderr).to_string();
+    assert!(stderr.contains("same file"), "{stderr}");
+    assert!(
+        stderr.contains(a) && stderr.contains(b),
+        "`{a}`, `{b}` not in {stderr}"
+    );
+    assert_eq!(
+        bytes(keep),
+        before,
+        "{} was changed: {stderr}",
+        keep.display()
+    );
+}
+
+#[test]
+fn no_output_ever_replaces_an_input() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let base = write(d, "t.csv", &baseline_csv(300, 8));
+    let before = bytes(&base);
+    let s = |p: &Path| p.to_str().unwrap().to_string();
+    // fit: --out is the baseline, also spelled another way and through a hard link.
+    let dotted = d.join(".").join("t.csv");
+    let hard = d.join("hard.csv");
+    std::fs::hard_link(&base, &hard).unwrap();
+    for out in [&base, &dotted, &hard] {
+        refused(
+            fit(&base, out).args(["--quiet"]),
+            &s(out),
+            &s(&base),
+            &base,
+            &before,
+        );
+    }
+    // --report is the baseline.
+    refused(
+        fit(&base, &d.join("m.blob")).args(["--quiet", "--report", &s(&base)]),
+        "--report",
+        &s(&base),
+        &base,
+        &before,
+    );
+    assert!(!d.join("m.blob").exists());
+    // A baseline named pump.json and --out pump.blob: the card would overwrite the baseline.
+    let pump = write(d, "pump.json", &baseline_csv(300, 9));
+    let pump_before = bytes(&pump);
+    refused(
+        fit(&pump, &d.join("pump.blob")).args(["--quiet"]),
+        "model card",
+        &s(&pump),
+        &pump,
+        &pump_before,
+    );
+    assert!(!d.join("pump.blob").exists());
+    // --out is the --validation file.
+    let val = write(
+        d,
+        "val.csv",
+        "current_a,pressure_bar,temp_c,label\n10,3,40,0\n13,1,40,1\n",
+    );
+    let val_before = bytes(&val);
+    refused(
+        fit(&base, &val).args(["--quiet", "--validation", &s(&val)]),
+        "--validation",
+        &s(&val),
+        &val,
+        &val_before,
+    );
+    // replay --out is the input, the blob or the card; evaluate --report is the input or the blob.
+    let model = fit_ok(d);
+    let card = model.with_extension("json");
+    let readings = write(
+        d,
+        "r.csv",
+        "current_a,pressure_bar,temp_c,label\n10,3,40,0\n13,1,40,1\n",
+    );
+    for (victim, role) in [
+        (&readings, "--input"),
+        (&model, "--model"),
+        (&card, "model card"),
+    ] {
+        let keep = bytes(victim);
+        let mut c = ellipsoid();
+        c.args(["replay", "--model", &s(&model), "--input", &s(&readings)])
+            .args(["--out", &s(victim), "--quiet"]);
+        refused(&mut c, role, &s(victim), victim, &keep);
+    }
+    for (victim, role) in [(&readings, "--input"), (&model, "--model")] {
+        let keep = bytes(victim);
+        let mut c = ellipsoid();
+        c.args(["evaluate", "--model", &s(&model), "--input", &s(&readings)])
+            .args(["--report", &s(victim), "--quiet"]);
+        refused(&mut c, role, &s(victim), victim, &keep);
+    }
+}
+
+#[test]
+fn fit_writes_all_its_outputs_or_none() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = fit_ok(dir.path());
+    let card = model.with_extension("json");
+    let (blob_before, card_before) = (bytes(&model), bytes(&card));
+    let other = write(dir.path(), "other.csv", &baseline_csv(1500, 77));
+    fit(&other, &model)
+        .args(["--quiet", "--report", "/proc/r.html"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("/proc"));
+    assert_eq!(bytes(&model), blob_before, "the blob was replaced");
+    assert_eq!(bytes(&card), card_before, "the card was replaced");
+    assert_eq!(
+        listing(dir.path()),
+        ["base.csv", "m.blob", "m.json", "other.csv"]
+    );
+    // A temporary file a killed run left an hour ago is removed by the next fit there; the
+    // report goes to another folder, and all three files are replaced.
+    let orphan = write(dir.path(), ".ellipsoid-Xk3Lq9.tmp", "half a blob");
+    let hour_ago = std::time::SystemTime::now() - std::time::Duration::from_secs(3600);
+    std::fs::File::options()
+        .write(true)
+        .open(&orphan)
+        .unwrap()
+        .set_modified(hour_ago)
+        .unwrap();
+    let elsewhere = tempfile::tempdir().unwrap();
+    let report = elsewhere.path().join("r.html");
+    fit(&other, &model)
+        .args(["--quiet", "--report", report.to_str().unwrap()])
+        .assert()
+        .success();
+    assert_ne!(bytes(&model), blob_before);
+    assert_ne!(bytes(&card), card_before);
+    assert!(report.exists());
+    assert_eq!(
+        listing(dir.path()),
+        ["base.csv", "m.blob", "m.json", "other.csv"]
+    );
+    assert_eq!(listing(elsewhere.path()), ["r.html"]);
+}
+
+/// Many fits at once to one --out, each from its own baseline with its own model id: afterwards
+/// the blob and the card always come from the same fit, and no temporary file is left.
+#[test]
+fn concurrent_fits_to_one_out_leave_a_matching_blob_and_card() {
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let bin = assert_cmd::cargo::cargo_bin("ellipsoid");
+    let out = d.join("m.blob");
+    let bases: Vec<PathBuf> = (0..6)
+        .map(|k| {
+            write(
+                d,
+                &format!("b{k}.csv"),
+                &baseline_csv(400 + 50 * k, 100 + k as u64),
+            )
+        })
+        .collect();
+    for round in 0..8 {
+        let children: Vec<_> = bases
+            .iter()
+            .enumerate()
+            .map(|(k, b)| {
+                std::process::Command::new(&bin)
+                    .args(["fit", b.to_str().unwrap(), "--out", out.to_str().unwrap()])
+                    .args([
+                        "--quiet",
+                        "--holdout",
+                        "0",
+                        "--model-id",
+                        &(1000 + k).to_string(),
+                    ])
+                    .stdout(std::process::Stdio::null())
+                    .spawn()
+                    .unwrap()
+            })
+            .collect();
+        for mut c in children {
+            assert!(c.wait().unwrap().success());
+        }
+        let blob = bytes(&out);
+        let card: serde_json::Value =
+            serde_json::from_slice(&bytes(&out.with_extension("json"))).unwrap();
+        let crc = u32::from_le_bytes(blob[blob.len() - 4..].try_into().unwrap());
+        assert_eq!(
+            card["blob_crc"].as_u64().unwrap(),
+            u64::from(crc),
+            "round {round}"
+        );
+        let k = bases
+            .iter()
+            .position(|b| card["trained_on"].as_str().unwrap() == b.to_str().unwrap())
+            .expect("the card names one of the baselines");
+        let id = blob::decode::<3>(&blob).unwrap().meta.model_id;
+        assert_eq!(
+            id,
+            1000 + k as u32,
+            "round {round}: blob of one fit, card of another"
+        );
+    }
+    let litter: Vec<String> = listing(d)
+        .into_iter()
+        .filter(|n| n.starts_with('.'))
+        .collect();
+    assert!(litter.is_empty(), "{litter:?}");
+}
+
+/// The 500-row baseline with `cell` as `pressure_bar` on file line 300.
+fn with_cell(cell: &str) -> String {
+    let mut lines: Vec<String> = baseline_csv(500, 21).lines().map(str::to_string).collect();
+    let mut cells: Vec<String> = lines[299].split(',').map(str::to_string).collect();
+    cells[2] = cell.to_string();
+    lines[299] = cells.join(",");
+    lines.join("\n") + "\n"
+}
+
+#[test]
+fn a_gross_outlier_in_the_baseline_is_refused_at_its_line() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("m.blob");
+    for cell in ["1e39", "1e30", "1e308", "-9999"] {
+        let base = write(dir.path(), "base.csv", &with_cell(cell));
+        fit(&base, &out)
+            .args(["--quiet"])
+            .assert()
+            .failure()
+            .stderr(predicate::str::contains(
+                "base.csv:300: column `pressure_bar`",
+            ))
+            .stderr(predicate::str::contains("robust standard deviations"))
+            .stderr(predicate::str::contains("--skip-bad-rows"))
+            .stderr(predicate::str::contains("--robust"))
+            .stderr(predicate::str::contains("constant").not());
+        assert!(!out.exists(), "{cell}");
+    }
+    // --skip-bad-rows skips the row, and the model sees pressure as it is (sd about 0.35).
+    let base = write(dir.path(), "base.csv", &with_cell("1e30"));
+    let a = fit(&base, &out)
+        .args(["--quiet", "--json", "--skip-bad-rows", "--holdout", "0"])
+        .assert()
+        .success();
+    let v: serde_json::Value = serde_json::from_slice(&a.get_output().stdout).unwrap();
+    assert_eq!(v["rows_used"], 499, "{v}");
+    let var = v["covariance"][4].as_f64().unwrap();
+    assert!(var > 0.05 && var < 0.3, "pressure variance {var}");
+    // --robust sets the row aside and says so.
+    let a = fit(&base, &out)
+        .args(["--quiet", "--json", "--robust", "--holdout", "0"])
+        .assert()
+        .success();
+    let v: serde_json::Value = serde_json::from_slice(&a.get_output().stdout).unwrap();
+    let set_aside: Vec<u64> = serde_json::from_value(v["robust_set_aside_lines"].clone()).unwrap();
+    assert!(set_aside.contains(&300), "{set_aside:?}");
+    let var = v["covariance"][4].as_f64().unwrap();
+    assert!(var < 0.3, "pressure variance {var}");
+}
+
+#[test]
+fn edited_feature_names_in_the_card_are_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = fit_ok(dir.path());
+    let card = model.with_extension("json");
+    let text = std::fs::read_to_string(&card).unwrap();
+    let swapped = text
+        .replace("\"current_a\"", "\"@\"")
+        .replace("\"temp_c\"", "\"current_a\"")
+        .replace("\"@\"", "\"temp_c\"");
+    assert_ne!(text, swapped);
+    std::fs::write(&card, swapped).unwrap();
+    let readings = write(
+        dir.path(),
+        "r.csv",
+        "current_a,pressure_bar,temp_c,label\n10,3,40,0\n13,1,40,1\n",
+    );
+    let m = model.to_str().unwrap();
+    let r = readings.to_str().unwrap();
+    let o = dir.path().join("o.csv");
+    ellipsoid()
+        .args([
+            "replay",
+            "--model",
+            m,
+            "--input",
+            r,
+            "--out",
+            o.to_str().unwrap(),
+        ])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("were changed after fit"));
+    assert!(!o.exists());
+    ellipsoid()
+        .args(["evaluate", "--model", m, "--input", r])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("were changed after fit"));
+}
+
+#[test]
+fn a_label_column_in_the_baseline_is_warned_about() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut s = String::from("current_a,pressure_bar,temp_c,label\n");
+    for (i, line) in baseline_csv(400, 31).lines().skip(1).enumerate() {
+        let cells: Vec<&str> = line.split(',').collect();
+        let _ = writeln!(
+            s,
+            "{},{},{},{}",
+            cells[1],
+            cells[2],
+            cells[3],
+            u8::from(i % 9 == 0)
+        );
+    }
+    let base = write(dir.path(), "labelled.csv", &s);
+    let a = fit(&base, &dir.path().join("m.blob"))
+        .args(["--quiet", "--json"])
+        .assert()
+        .success();
+    let v: serde_json::Value = serde_json::from_slice(&a.get_output().stdout).unwrap();
+    let w = v["warnings"].to_string();
+    assert!(w.contains("`label` holds only the values 0 and 1"), "{w}");
+    assert!(!w.contains("`current_a` holds"), "{w}");
+}
+
+#[test]
+fn replay_names_the_bad_input_cell_first() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = fit_ok(dir.path());
+    let readings = write(
+        dir.path(),
+        "r.csv",
+        "current_a,pressure_bar,temp_c\n10,3,40\n10,x7,40\n",
+    );
+    let out = dir.path().join("out.csv");
+    let a = ellipsoid()
+        .args(["replay", "--model", model.to_str().unwrap()])
+        .args([
+            "--input",
+            readings.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ])
+        .assert()
+        .failure();
+    let stderr = String::from_utf8_lossy(&a.get_output().stderr).to_string();
+    let first = stderr.lines().next().unwrap();
+    assert!(
+        first.contains("r.csv:3: column `pressure_bar`: `x7`"),
+        "{stderr}"
+    );
+    assert!(!stderr.contains("while writing"), "{stderr}");
+    assert!(!out.exists());
+}
+
+#[test]
+fn a_column_f32_cannot_resolve_is_explained() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("m.blob");
+    let mut rng = ChaCha8Rng::seed_from_u64(41);
+    // sd 2 around 1e9, and epoch milliseconds at one reading a second.
+    let mut a = String::from("a,b,big\n");
+    let mut b = String::from("a,b,epoch_ms\n");
+    for i in 0..500u64 {
+        let x: f64 = rng.random_range(0.0..1.0);
+        let y: f64 = rng.random_range(0.0..1.0);
+        let _ = writeln!(
+            a,
+            "{x},{y},{}",
+            1e9 + rng.random_range(-3.5f64..3.5).round()
+        );
+        let _ = writeln!(b, "{x},{y},{}", 1_767_225_600_000 + 1000 * i);
+    }
+    for (name, text, col) in [("big.csv", a, "`big`"), ("ms.csv", b, "`epoch_ms`")] {
+        let base = write(dir.path(), name, &text);
+        fit(&base, &out)
+            .args(["--quiet"])
+            .assert()
+            .failure()
+            .stderr(predicate::str::contains(col))
+            .stderr(predicate::str::contains("f32"))
+            .stderr(predicate::str::contains("Subtract an offset"))
+            .stderr(predicate::str::contains("constant feature(s)").not());
+    }
+}
+
+#[test]
+fn long_cells_are_cut_and_cr_only_files_are_named() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("m.blob");
+    let mut lines: Vec<String> = baseline_csv(50, 2).lines().map(str::to_string).collect();
+    let huge = "9".repeat(100_000) + "x";
+    lines[4] = format!("2026-01-01T00:00:04Z,10.1,{huge},40");
+    let base = write(dir.path(), "long.csv", &lines.join("\n"));
+    let a = fit(&base, &out).args(["--quiet"]).assert().failure();
+    let stderr = String::from_utf8_lossy(&a.get_output().stderr).to_string();
+    assert!(stderr.len() < 600, "{} bytes of stderr", stderr.len());
+    assert!(
+        stderr.contains("long.csv:5: column `pressure_bar`"),
+        "{stderr}"
+    );
+    assert!(stderr.contains("… (100001 bytes)"), "{stderr}");
+    // Lines ended by a lone CR.
+    let cr = baseline_csv(50, 2).replace('\n', "\r");
+    let base = write(dir.path(), "mac.csv", &cr);
+    fit(&base, &out)
+        .args(["--quiet"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("mac.csv:1"))
+        .stderr(predicate::str::contains("lone carriage return"));
+    // CRLF is still read.
+    let crlf = baseline_csv(50, 2).replace('\n', "\r\n");
+    let base = write(dir.path(), "dos.csv", &crlf);
+    fit(&base, &out).args(["--quiet"]).assert().success();
+}

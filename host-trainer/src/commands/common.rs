@@ -7,6 +7,8 @@ use clap::Args;
 
 use crate::data::card::ModelCard;
 use crate::data::ingest::CsvOptions;
+use crate::data::output;
+use crate::data::paths::{refuse_clashes, Role};
 use crate::device::dims::{decode_file, AnyModel};
 
 /// How the CSV is read.
@@ -70,6 +72,20 @@ pub struct ModelInput {
     pub features: Option<Vec<String>>,
 }
 
+impl ModelInput {
+    /// Refuse, before any work, an output that is the same file as the readings, the blob or
+    /// its card.
+    pub fn refuse_overwrite(&self, outputs: &[Role<'_>]) -> Result<()> {
+        let card = ModelCard::path_for(&self.model);
+        let inputs = [
+            Role::new("the --input file", &self.input),
+            Role::new("the --model blob", &self.model),
+            Role::new("the model card", &card),
+        ];
+        refuse_clashes(&inputs, outputs)
+    }
+}
+
 /// A model read from a blob plus the names of its features.
 pub struct LoadedModel {
     /// The decoded model.
@@ -83,6 +99,9 @@ pub struct LoadedModel {
 /// Read and validate a blob, and find its feature names (card or `--features`).
 pub fn load_model(input: &ModelInput) -> Result<LoadedModel> {
     let path = &input.model;
+    // Blob and card are read while no commit runs in their folder, after finishing any that a
+    // killed fit left half-done.
+    let _settled = output::settle(path)?;
     let (bytes, model) = decode_file(path)?;
     let (features, card) = match &input.features {
         Some(f) => (f.clone(), None),

@@ -8,6 +8,7 @@ use clap::Args;
 
 use crate::commands::common::{load_model, parse_delimiter, ModelInput};
 use crate::data::output;
+use crate::data::paths::Role;
 use crate::pipeline::evaluate::{
     diagonal_of, model_correlation, qq_points, score_labelled, top_alarms,
 };
@@ -44,6 +45,9 @@ pub struct EvaluateArgs {
 
 /// Run `evaluate`.
 pub fn run(a: &EvaluateArgs) -> Result<()> {
+    if let Some(r) = &a.report {
+        a.model.refuse_overwrite(&[Role::new("--report", r)])?;
+    }
     let loaded = load_model(&a.model)?;
     let rate = a
         .rate_hz

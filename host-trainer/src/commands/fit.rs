@@ -8,10 +8,11 @@ use ellipsoid_core::AlarmPolicy;
 
 use crate::commands::common::CsvArgs;
 use crate::data::card::ModelCard;
-use crate::data::output;
+use crate::data::output::Outputs;
+use crate::data::paths::Role;
 use crate::fit::Shrinkage;
 use crate::pipeline::summary::{report_data, summary_json, summary_text};
-use crate::pipeline::train::{check_output_paths, train, write_outputs, TrainSpec};
+use crate::pipeline::train::{check_output_paths, stage_outputs, train, TrainSpec};
 use crate::report;
 use crate::stats::threshold::Method;
 
@@ -142,13 +143,20 @@ impl FitArgs {
 
 /// Run `fit`.
 pub fn run(a: &FitArgs) -> Result<()> {
-    check_output_paths(&a.out, a.report.as_deref())?;
+    let mut inputs = vec![Role::new("the baseline", &a.baseline)];
+    if let Some(v) = &a.validation {
+        inputs.push(Role::new("the --validation file", v));
+    }
+    check_output_paths(&a.out, a.report.as_deref(), &inputs)?;
     let t = train(&a.spec())?;
-    write_outputs(&t, &a.out)?;
+    // Blob, card and report are replaced together or not at all.
+    let mut outputs = Outputs::new();
+    stage_outputs(&t, &a.out, &mut outputs)?;
     if let Some(path) = &a.report {
         let html = report::render(&report_data(&t))?;
-        output::write_bytes(path, html.as_bytes())?;
+        outputs.stage_bytes(path, html.as_bytes())?;
     }
+    outputs.commit()?;
     if a.json {
         println!("{}", serde_json::to_string_pretty(&summary_json(&t))?);
     } else {

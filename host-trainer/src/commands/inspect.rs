@@ -21,12 +21,14 @@ pub struct InspectArgs {
 
 /// Run `inspect`.
 pub fn run(path: &Path, as_json: bool) -> Result<()> {
+    let settled = crate::data::output::settle(path)?;
     let (bytes, model) = decode_file(path)?;
     let (card, card_problem) = match ModelCard::read_for(path, &bytes) {
         Ok(c) => (Some(c), None),
         Err(e) if ModelCard::path_for(path).exists() => (None, Some(format!("{e:#}"))),
         Err(_) => (None, None),
     };
+    drop(settled);
     let p = model.params();
     let n = model.n();
     let names: Vec<String> = match &card {

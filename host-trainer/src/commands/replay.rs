@@ -8,6 +8,7 @@ use clap::Args;
 use crate::commands::common::{load_model, parse_delimiter, ModelInput};
 use crate::data::ingest::{CsvOptions, Reader};
 use crate::data::output;
+use crate::data::paths::Role;
 use crate::device::replay::{to_device, CsvSink, Replayer};
 
 /// Options of `replay`.
@@ -31,6 +32,7 @@ pub struct ReplayArgs {
 
 /// Run `replay`.
 pub fn run(a: &ReplayArgs) -> Result<()> {
+    a.model.refuse_overwrite(&[Role::new("--out", &a.out)])?;
     let loaded = load_model(&a.model)?;
     let opts = CsvOptions {
         delimiter: a.delimiter,

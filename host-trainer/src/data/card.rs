@@ -3,7 +3,10 @@
 //! The blob holds only what the device needs. The card holds what a person and the trainer's
 //! other commands need: the feature names (to match CSV columns), how the threshold was chosen,
 //! the reading rate it was chosen for. It carries the blob's CRC so a card that does not belong
-//! to its blob is refused.
+//! to its blob is refused, and a digest of its feature names tied to that CRC
+//! ([`names_digest`]), so a card whose names were edited by hand (two names swapped: the CRC
+//! still matches, and every reading would be scored against the wrong columns) is refused too.
+//! The digest guards against mistakes, not against someone who recomputes it on purpose.
 
 use std::path::{Path, PathBuf};
 
@@ -12,12 +15,31 @@ use serde::{Deserialize, Serialize};
 
 use crate::data::output;
 
+/// The card format this trainer writes and reads. Version 2 added `names_digest`.
+pub const CARD_VERSION: u32 = 2;
+
+/// CRC-32 (the blob's own checksum) of the blob's CRC, then each feature name and each log
+/// feature name, in order, each ended by a zero byte, the two lists separated by a `0x01` byte.
+pub fn names_digest(blob_crc: u32, features: &[String], log_features: &[String]) -> String {
+    let mut bytes = blob_crc.to_le_bytes().to_vec();
+    for name in features {
+        bytes.extend_from_slice(name.as_bytes());
+        bytes.push(0);
+    }
+    bytes.push(1);
+    for name in log_features {
+        bytes.extend_from_slice(name.as_bytes());
+        bytes.push(0);
+    }
+    format!("{:08x}", ellipsoid_core::blob::checksum(&bytes))
+}
+
 /// What `fit` knew about a model that the blob does not carry.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct ModelCard {
     /// Always `"ellipsoid-model-card"`.
     pub kind: String,
-    /// Card format version, 1.
+    /// Card format version, [`CARD_VERSION`].
     pub version: u32,
     /// Feature names in model order: CSV columns are matched against these.
     pub features: Vec<String>,
@@ -27,6 +49,8 @@ pub struct ModelCard {
     pub blob_crc: u32,
     /// Bytes in that blob.
     pub blob_len: usize,
+    /// [`names_digest`] of `features` and `log_features` with `blob_crc`, as 8 hex digits.
+    pub names_digest: String,
     /// How the alarm threshold was chosen (`chi-square`, `empirical`, `f1`).
     pub threshold_method: String,
     /// The per-reading false-alarm probability aimed at.
@@ -45,11 +69,14 @@ impl ModelCard {
 
     /// Write the card atomically.
     pub fn write(&self, path: &Path) -> Result<()> {
-        output::write_atomic(path, |w| {
-            serde_json::to_writer_pretty(&mut *w, self)?;
-            w.write_all(b"\n")?;
-            Ok(())
-        })
+        output::write_atomic(path, |w| self.write_to(w))
+    }
+
+    /// The card's JSON text, into `w`.
+    pub fn write_to(&self, w: &mut dyn std::io::Write) -> Result<()> {
+        serde_json::to_writer_pretty(&mut *w, self)?;
+        w.write_all(b"\n")?;
+        Ok(())
     }
 
     /// Read the card beside `blob_path` and check it belongs to `blob`.
@@ -63,13 +90,22 @@ impl ModelCard {
                 blob_path.display()
             )
         })?;
-        let card: ModelCard = serde_json::from_str(&text)
+        let value: serde_json::Value = serde_json::from_str(&text)
             .with_context(|| format!("{}: not a valid model card", path.display()))?;
-        if card.kind != "ellipsoid-model-card" || card.version != 1 {
+        let version = value.get("version").and_then(serde_json::Value::as_u64);
+        if version.is_some_and(|v| v != u64::from(CARD_VERSION)) {
             bail!(
-                "{}: not an Ellipsoid model card of version 1",
-                path.display()
+                "{}: a model card of version {}; this trainer reads version {CARD_VERSION} \
+                 (whose feature names are protected by a digest): fit the model again, or give \
+                 --features NAME,... in model order",
+                path.display(),
+                version.unwrap_or(0)
             );
+        }
+        let card: ModelCard = serde_json::from_value(value)
+            .with_context(|| format!("{}: not a valid model card", path.display()))?;
+        if card.kind != "ellipsoid-model-card" {
+            bail!("{}: not an Ellipsoid model card", path.display());
         }
         let crc = blob_crc(blob);
         if card.blob_crc != crc || card.blob_len != blob.len() {
@@ -81,6 +117,16 @@ impl ModelCard {
                 blob_path.display(),
                 crc,
                 blob.len()
+            );
+        }
+        let want = names_digest(card.blob_crc, &card.features, &card.log_features);
+        if card.names_digest != want {
+            bail!(
+                "{}: its feature names ({}) were changed after fit wrote the card (their digest \
+                 does not match): scoring with them would match the wrong columns; fit again, or \
+                 give --features NAME,... in model order",
+                path.display(),
+                card.features.join(", ")
             );
         }
         Ok(card)
@@ -106,11 +152,12 @@ mod tests {
         let blob = [1u8, 2, 3, 4, 5, 6, 7, 8];
         let card = ModelCard {
             kind: "ellipsoid-model-card".into(),
-            version: 1,
+            version: CARD_VERSION,
             features: vec!["a".into(), "b".into()],
             log_features: vec![],
             blob_crc: blob_crc(&blob),
             blob_len: blob.len(),
+            names_digest: names_digest(blob_crc(&blob), &["a".into(), "b".into()], &[]),
             threshold_method: "chi-square".into(),
             alpha: 1e-4,
             rate_hz: 1.0,
@@ -121,5 +168,16 @@ mod tests {
         let other = [1u8, 2, 3, 4, 5, 6, 7, 9];
         let e = ModelCard::read_for(&blob_path, &other).unwrap_err();
         assert!(e.to_string().contains("describes another blob"), "{e}");
+        // Names swapped by hand: the CRC still matches, the digest does not.
+        let mut swapped = card.clone();
+        swapped.features.swap(0, 1);
+        swapped.write(&ModelCard::path_for(&blob_path)).unwrap();
+        let e = ModelCard::read_for(&blob_path, &blob).unwrap_err();
+        assert!(e.to_string().contains("were changed after fit"), "{e}");
+        // So is a log feature added by hand.
+        let mut logged = card.clone();
+        logged.log_features.push("a".into());
+        logged.write(&ModelCard::path_for(&blob_path)).unwrap();
+        assert!(ModelCard::read_for(&blob_path, &blob).is_err());
     }
 }

@@ -4,4 +4,5 @@
 pub mod card;
 pub mod ingest;
 pub mod output;
+pub mod paths;
 pub mod scenario;

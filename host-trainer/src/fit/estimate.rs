@@ -4,6 +4,7 @@
 use anyhow::{bail, Context, Result};
 use nalgebra::DMatrix;
 
+use super::outliers::short;
 use super::read::Gathered;
 use super::{RobustInfo, Shrinkage, COLLINEAR_PIVOT2, CONSTANT_REL_SD};
 use crate::stats::moments::{correlation_of, Moments};
@@ -114,7 +115,17 @@ fn ledoit_wolf_standardised(rows: &[f64], n: usize, p: usize) -> (Vec<f64>, f64)
     (cov, fit.intensity)
 }
 
-/// Refuse constant features; warn about nearly constant ones.
+/// The gap between neighbouring `f32` values at the magnitude of `x`.
+fn f32_step(x: f64) -> f64 {
+    let v = (x.abs() as f32).max(f32::MIN_POSITIVE);
+    if !v.is_finite() {
+        return f64::INFINITY;
+    }
+    f64::from(f32::from_bits(v.to_bits() + 1)) - f64::from(v)
+}
+
+/// Refuse constant features, features whose variation `f32` cannot resolve at their magnitude,
+/// and features whose moments overflow; warn about nearly constant ones.
 pub(super) fn check_constant(
     file: &str,
     names: &[String],
@@ -127,13 +138,37 @@ pub(super) fn check_constant(
     for i in 0..p {
         let sd = cov[i * p + i].sqrt();
         let scale = mean[i].abs();
-        if sd.is_nan() || sd <= CONSTANT_REL_SD * scale {
-            constant.push(format!("`{}` (mean {}, sd {:e})", names[i], mean[i], sd));
+        let name = &names[i];
+        if !(sd.is_finite() && mean[i].is_finite()) {
+            bail!(
+                "{file}: the values of `{name}` are so large that its mean or variance overflows \
+                 (mean {}, sd {}): the column holds absurd values (near ±1e308); fix those rows, \
+                 or skip them with --skip-bad-rows",
+                short(mean[i]),
+                short(sd)
+            );
+        }
+        if sd == 0.0 {
+            constant.push(format!("`{name}` (mean {}, sd {sd:e})", short(mean[i])));
+        } else if sd <= CONSTANT_REL_SD * scale {
+            bail!(
+                "{file}: `{name}` varies (sd {}) around {}, by only {:.1e} of its magnitude: the \
+                 device computes in f32, whose neighbouring values there are {} apart, so it cannot \
+                 tell these readings apart and the feature would look constant. Subtract an offset \
+                 from the column (for example its first value, or the start of the day for a time \
+                 in milliseconds) or drop it; if it is a time column, name it with --timestamp",
+                short(sd),
+                short(mean[i]),
+                sd / scale,
+                short(f32_step(scale))
+            );
         } else if sd < 1e-4 * scale {
             warnings.push(format!(
-                "`{}` varies by only {:.1e} of its mean; the device's f32 arithmetic resolves it coarsely",
-                names[i],
-                sd / scale
+                "`{name}` varies by only {:.1e} of its mean; the device's f32 arithmetic (steps of \
+                 {} at {}) resolves it coarsely: subtracting an offset from the column would help",
+                sd / scale,
+                short(f32_step(scale)),
+                short(mean[i])
             ));
         }
     }

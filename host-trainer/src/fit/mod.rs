@@ -13,8 +13,13 @@
 //!    row's byte offset, so the merged sample is the same whatever the number of threads.
 //! 4. [`Shrinkage::LedoitWolf`] and [`FitOptions::robust`] need every training row: in those
 //!    modes the threads also keep their rows, and memory grows with the row count (8 bytes a value).
-//! 5. Check the result: constant features and features that are linear combinations of others
-//!    are named in the error; fewer than `p + 1` rows is an error, fewer than `10 p` a warning.
+//! 5. Check the result: a gross outlier (a value more than [`GROSS_Z`] robust standard deviations
+//!    from its feature's median; each thread keeps every feature's minimum and maximum, and the
+//!    median and MAD come from the sample; see `outliers.rs`) is refused with its line, or skipped
+//!    in a second pass, or set aside before FAST-MCD; a feature of only 0 and 1 is warned about;
+//!    constant features, features `f32` cannot resolve at their magnitude and features that are
+//!    linear combinations of others are named in the error; fewer than `p + 1` rows is an error,
+//!    fewer than `10 p` a warning.
 //! 6. Factor the correlation matrix `R = L Lᵀ` (nalgebra's Cholesky) and keep `W = L⁻¹`.
 //!    The core's parameters are then: offset = mean, scale = 1/sd, mean in standardised space = 0,
 //!    and `w = W`. The device's `f32` arithmetic thus works on standardised numbers of order 1.
@@ -36,12 +41,15 @@ use crate::stats::moments::correlation_of;
 
 mod check;
 mod estimate;
+mod outliers;
 mod read;
 mod sample;
 mod standardise;
 
 use check::{f32_check, score_holdout, transform, HoldoutOut};
 use estimate::{condition, estimate, inverse_factor, Estimate};
+pub use outliers::GROSS_Z;
+use outliers::{any_gross, drop_gross, Gate};
 use read::{read_training, split_holdout, Split};
 use standardise::Standardise;
 
@@ -216,10 +224,36 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
         train_end,
         holdout_at,
     } = split_holdout(path, &layout, opts.holdout)?;
-    let mut gathered = read_training(path, &layout, opts, log_mask, train_end)?;
+    let mut gathered = read_training(path, &layout, opts, log_mask, train_end, None)?;
+    let mut sample_rows =
+        std::mem::replace(&mut gathered.sample, sample::Sample::new(p)).into_rows();
+
+    // Gross outliers: refused, or skipped, or set aside before FAST-MCD. The pass kept only
+    // each feature's extremes; when one is gross, a second pass with the gate finds the rows
+    // (and stops at the first, naming its line, unless they are to be skipped).
+    let gate = if log_mask == 0 {
+        Gate::from_rows(&sample_rows, p)
+    } else {
+        Gate::from_rows(&transform_rows(&sample_rows, p, log_mask), p)
+    };
+    let mut gross_lines = Vec::new();
+    if any_gross(&gate, &gathered.extremes) {
+        if opts.robust && !opts.csv.skip_bad_rows {
+            gross_lines = drop_gross(&gate, &mut gathered.rows, &mut gathered.lines, p);
+            outliers::sample_without_gross(&gate, &mut sample_rows, p, log_mask);
+            let mut m = crate::stats::moments::Moments::new(p);
+            m.push_block(&gathered.rows);
+            gathered.moments = m;
+        } else {
+            gathered = read_training(path, &layout, opts, log_mask, train_end, Some(&gate))?;
+            sample_rows =
+                std::mem::replace(&mut gathered.sample, sample::Sample::new(p)).into_rows();
+        }
+    }
 
     let n = gathered.moments.n;
     let mut warnings = Vec::new();
+    label_like(&layout.features, &sample_rows, &mut warnings);
     if n < p as u64 + 1 {
         bail!(
             "{file}: only {n} usable training row(s) for {p} feature(s); at least {} are needed",
@@ -239,7 +273,7 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
         mean,
         cov,
         shrinkage,
-        robust,
+        mut robust,
     } = estimate(
         &file,
         &layout.features,
@@ -248,6 +282,10 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
         opts.shrinkage,
         &mut warnings,
     )?;
+    if let Some(r) = robust.as_mut().filter(|_| !gross_lines.is_empty()) {
+        r.set_aside_lines.extend(&gross_lines);
+        r.set_aside_lines.sort_unstable();
+    }
     let sd: Vec<f64> = (0..p).map(|i| cov[i * p + i].sqrt()).collect();
     let corr = correlation_of(&cov, p);
     let w = inverse_factor(&file, &layout.features, &corr)?;
@@ -259,12 +297,8 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
     }
 
     // Diagnostics on the sample, in the model's (log) space.
-    let sample_rows = gathered.sample.into_rows();
     let m = sample_rows.len() / p.max(1);
-    let t_rows: Vec<f64> = sample_rows
-        .chunks_exact(p)
-        .flat_map(|r| transform(r, log_mask))
-        .collect();
+    let t_rows = transform_rows(&sample_rows, p, log_mask);
     // Three independent jobs: the distribution checks (on their own thread), the f32-vs-f64
     // check over the sample, and the held-out tail through the core.
     let st = Standardise {
@@ -294,7 +328,7 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
         file: file.clone(),
         features: layout.features.clone(),
         log_mask,
-        rows_used: n,
+        rows_used: n + gross_lines.len() as u64,
         rows_skipped: gathered.skipped,
         skipped_reasons: gathered.reasons,
         rows_holdout: 0,
@@ -316,6 +350,32 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
         fitted.add_holdout(h);
     }
     Ok(fitted)
+}
+
+/// `ln` of the log features of raw rows (row-major).
+fn transform_rows(rows: &[f64], p: usize, log_mask: u32) -> Vec<f64> {
+    if log_mask == 0 {
+        return rows.to_vec();
+    }
+    rows.chunks_exact(p)
+        .flat_map(|r| transform(r, log_mask))
+        .collect()
+}
+
+/// Warn about a feature that holds only 0 and 1 in the sample: probably a label or an on/off
+/// state, which a Gaussian model of sensor readings should not take as a feature.
+fn label_like(names: &[String], sample: &[f64], warnings: &mut Vec<String>) {
+    let p = names.len();
+    for (j, name) in names.iter().enumerate() {
+        let col = || sample.chunks_exact(p).map(|r| r[j]);
+        let binary = col().all(|v| v == 0.0 || v == 1.0);
+        if binary && col().any(|v| v == 0.0) && col().any(|v| v == 1.0) {
+            warnings.push(format!(
+                "column `{name}` holds only the values 0 and 1: it looks like a label or an on/off \
+                 state, not a sensor reading; if it is a label, leave it out with --columns"
+            ));
+        }
+    }
 }
 
 /// Check the options against the header; returns the log mask.

@@ -7,6 +7,7 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 
 use anyhow::Result;
 
+use super::outliers::{short, Extremes, Gate};
 use super::sample::Sample;
 use super::{FitOptions, Shrinkage, BLOCK_ROWS};
 use crate::data::ingest::{self, CsvOptions, IngestError, Layout, Reader};
@@ -47,6 +48,8 @@ pub(super) struct Gathered {
     pub(super) moments: Moments,
     /// The diagnostics sample (raw values).
     pub(super) sample: Sample,
+    /// The smallest and largest (log-transformed) value of each feature.
+    pub(super) extremes: Extremes,
     /// Every (log-transformed) training row, when the estimator needs them.
     pub(super) rows: Vec<f64>,
     /// The file line of each row in `rows`.
@@ -58,13 +61,15 @@ pub(super) struct Gathered {
 }
 
 /// Read the training part `[data_start, train_end)` on `opts.threads` threads. The first error in
-/// file order stops the fit.
+/// file order stops the fit. With a `gate`, rows with a gross outlier are bad rows: a second
+/// pass, which skips them under `skip_bad_rows` and otherwise stops at the first one.
 pub(super) fn read_training(
     path: &Path,
     layout: &Layout,
     opts: &FitOptions,
     log_mask: u32,
     train_end: u64,
+    gate: Option<&Gate>,
 ) -> Result<Gathered> {
     let io = |e: io::Error| anyhow::Error::new(e).context(format!("while reading {}", layout.file));
     let p = layout.features.len();
@@ -93,6 +98,7 @@ pub(super) fn read_training(
                         csv: &opts.csv,
                         log_mask,
                         keep_rows,
+                        gate,
                         index: k,
                         first_error,
                     };
@@ -110,6 +116,7 @@ pub(super) fn read_training(
     let mut g = Gathered {
         moments: Moments::new(p),
         sample: Sample::new(p),
+        extremes: Extremes::new(p),
         rows: Vec::new(),
         lines: Vec::new(),
         skipped: 0,
@@ -124,6 +131,7 @@ pub(super) fn read_training(
         }
         g.moments.merge(&out.moments);
         g.sample.absorb(out.sample);
+        g.extremes.merge(&out.extremes);
         g.rows.append(&mut out.rows);
         g.lines.extend(out.lines.iter().map(|l| l + shift));
         g.skipped += out.skipped;
@@ -148,6 +156,8 @@ struct Job<'a> {
     csv: &'a CsvOptions,
     log_mask: u32,
     keep_rows: bool,
+    /// Rows with a gross outlier are bad rows.
+    gate: Option<&'a Gate>,
     /// Position of this range in the file.
     index: usize,
     /// The lowest index of a range that failed: ranges after it stop early.
@@ -158,6 +168,7 @@ struct Job<'a> {
 struct WorkerOut {
     moments: Moments,
     sample: Sample,
+    extremes: Extremes,
     rows: Vec<f64>,
     lines: Vec<u64>,
     lines_read: u64,
@@ -172,6 +183,7 @@ impl Job<'_> {
         let mut out = WorkerOut {
             moments: Moments::new(p),
             sample: Sample::new(p),
+            extremes: Extremes::new(p),
             rows: Vec::new(),
             lines: Vec::new(),
             lines_read: 0,
@@ -200,7 +212,6 @@ impl Job<'_> {
                     match non_positive_log(self.layout, row.line, row.values, self.log_mask) {
                         Some(e) => Some(e),
                         None => {
-                            out.sample.offer(row.byte, row.values);
                             let at = block.len();
                             block.extend_from_slice(row.values);
                             let t = &mut block[at..];
@@ -211,11 +222,27 @@ impl Job<'_> {
                                     }
                                 }
                             }
-                            if self.keep_rows {
-                                out.rows.extend_from_slice(t);
-                                out.lines.push(row.line);
+                            match self.gate.and_then(|g| g.first_gross(t).map(|j| (g, j))) {
+                                Some((g, j)) => {
+                                    let e = IngestError::GrossOutlier {
+                                        file: self.layout.file.clone(),
+                                        line: row.line,
+                                        column: self.layout.features[j].clone(),
+                                        value: short(row.values[j]),
+                                        detail: g.detail(j, t[j], (self.log_mask >> j) & 1 == 1),
+                                    };
+                                    block.truncate(at);
+                                    Some(e)
+                                }
+                                None => {
+                                    out.sample.offer(row.byte, row.values);
+                                    if self.keep_rows {
+                                        out.rows.extend_from_slice(t);
+                                        out.lines.push(row.line);
+                                    }
+                                    None
+                                }
                             }
-                            None
                         }
                     }
                 }
@@ -225,7 +252,9 @@ impl Job<'_> {
             if let Some(e) = bad {
                 // A row error stops the range unless `skip_bad_rows` (for the log check) says not.
                 let fatal = match e {
-                    IngestError::NotPositive { .. } => reader.skip_or_fail(e).err(),
+                    IngestError::NotPositive { .. } | IngestError::GrossOutlier { .. } => {
+                        reader.skip_or_fail(e).err()
+                    }
                     e => Some(e),
                 };
                 if let Some(e) = fatal {
@@ -236,10 +265,12 @@ impl Job<'_> {
                 continue;
             }
             if block.len() == BLOCK_ROWS * p {
+                out.extremes.offer_block(&block);
                 out.moments.push_block(&block);
                 block.clear();
             }
         }
+        out.extremes.offer_block(&block);
         out.moments.push_block(&block);
         out.lines_read = reader.lines_read();
         out.skipped = reader.skipped();

@@ -12,9 +12,10 @@ use anyhow::{Context, Result};
 use ellipsoid_core::{blob, AlarmMachine, AlarmPolicy, ModelMeta, Scored, Thresholds, Verdict};
 use serde::Serialize;
 
-use crate::data::card::{blob_crc, ModelCard};
+use crate::data::card::{blob_crc, names_digest, ModelCard, CARD_VERSION};
 use crate::data::ingest::{CsvOptions, Reader};
-use crate::data::output;
+use crate::data::output::Outputs;
+use crate::data::paths::{refuse_clashes, Role};
 use crate::device::dims::{decode_any, AnyModel};
 use crate::device::replay::to_device;
 use crate::fit::{fit_file, FitOptions, Fitted, Shrinkage};
@@ -371,7 +372,7 @@ pub fn train(a: &TrainSpec) -> Result<Trained> {
             a.rate_hz,
         )
     });
-    let log_features = fitted
+    let log_features: Vec<String> = fitted
         .features
         .iter()
         .enumerate()
@@ -380,7 +381,8 @@ pub fn train(a: &TrainSpec) -> Result<Trained> {
         .collect();
     let card = ModelCard {
         kind: "ellipsoid-model-card".into(),
-        version: 1,
+        version: CARD_VERSION,
+        names_digest: names_digest(blob_crc(&blob_bytes), &fitted.features, &log_features),
         features: fitted.features.clone(),
         log_features,
         blob_crc: blob_crc(&blob_bytes),
@@ -414,8 +416,9 @@ pub fn method_name(m: Method) -> &'static str {
     }
 }
 
-/// Refuse output paths that would overwrite each other (the card is the blob's path with `.json`).
-pub fn check_output_paths(out: &Path, report: Option<&Path>) -> Result<()> {
+/// Refuse output paths that would overwrite an input or each other (the card is the blob's
+/// path with `.json`), before any work is done.
+pub fn check_output_paths(out: &Path, report: Option<&Path>, inputs: &[Role<'_>]) -> Result<()> {
     let card = ModelCard::path_for(out);
     anyhow::ensure!(
         card != out,
@@ -423,23 +426,30 @@ pub fn check_output_paths(out: &Path, report: Option<&Path>) -> Result<()> {
         out.display(),
         card.display()
     );
+    let mut outputs = vec![
+        Role::new("--out", out),
+        Role::new("the model card written beside --out,", &card),
+    ];
     if let Some(r) = report {
-        anyhow::ensure!(
-            r != out && r != card,
-            "--report {} is the same file as the blob or its model card",
-            r.display()
-        );
+        outputs.push(Role::new("--report", r));
     }
+    refuse_clashes(inputs, &outputs)
+}
+
+/// Stage the blob and its card in `outputs`, to be committed with the command's other outputs.
+pub fn stage_outputs(t: &Trained, out: &Path, outputs: &mut Outputs) -> Result<()> {
+    outputs.stage_bytes(out, &t.blob)?;
+    outputs
+        .stage(&ModelCard::path_for(out), |w| t.card.write_to(w))
+        .context("while writing the model card")?;
     Ok(())
 }
 
-/// Write the blob and its card (each atomically).
+/// Write the blob and its card, both or neither (see [`crate::data::output`]).
 pub fn write_outputs(t: &Trained, out: &Path) -> Result<()> {
-    output::write_bytes(out, &t.blob)?;
-    t.card
-        .write(&ModelCard::path_for(out))
-        .context("while writing the model card")?;
-    Ok(())
+    let mut outputs = Outputs::new();
+    stage_outputs(t, out, &mut outputs)?;
+    outputs.commit()
 }
 
 #[cfg(test)]

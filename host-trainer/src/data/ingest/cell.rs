@@ -46,3 +46,18 @@ pub(super) fn parse_f64(cell: &[u8]) -> Option<f64> {
 pub(super) fn lossy(b: &[u8]) -> String {
     String::from_utf8_lossy(b).into_owned()
 }
+
+/// Cells longer than this many characters are cut in messages.
+pub const SHOW_CHARS: usize = 40;
+
+/// A cell's text for an error message: as it is, or its first [`SHOW_CHARS`] characters, an
+/// ellipsis and its length, so that a 2 MB cell does not flood the terminal.
+pub fn shown(b: &[u8]) -> String {
+    let text = String::from_utf8_lossy(b);
+    let count = text.chars().count();
+    if count <= SHOW_CHARS {
+        return text.into_owned();
+    }
+    let head: String = text.chars().take(SHOW_CHARS).collect();
+    format!("{head}… ({} bytes)", b.len())
+}

@@ -21,6 +21,15 @@ pub enum IngestError {
         /// The file.
         file: String,
     },
+    /// The lines end in a lone carriage return, which this reader does not split.
+    #[error(
+        "{file}:1: the lines end in a lone carriage return (CR, old Mac style), which is not read \
+         as a line end; convert them to LF first, e.g. `tr '\\r' '\\n' < in.csv > out.csv`"
+    )]
+    CarriageReturns {
+        /// The file.
+        file: String,
+    },
     /// The file has a header line and nothing else.
     #[error("{file}: the file has a header row but no data rows")]
     HeaderOnly {
@@ -154,6 +163,21 @@ pub enum IngestError {
         /// The value.
         value: String,
     },
+    /// A baseline value so far from the rest of its column that it must be a fault of the log
+    /// (raised by the fitting code's gross-outlier check).
+    #[error("{file}:{line}: column `{column}`: {value} {detail}")]
+    GrossOutlier {
+        /// The file.
+        file: String,
+        /// The line.
+        line: u64,
+        /// The column name.
+        column: String,
+        /// The value, shortened.
+        value: String,
+        /// How far it lies, and what to do.
+        detail: String,
+    },
     /// Reading a row failed for a reason of the CSV layer (for instance an I/O error mid-file).
     #[error("{file}:{line}: {message}")]
     Record {
@@ -175,6 +199,7 @@ impl IngestError {
             | IngestError::NotFinite { line, .. }
             | IngestError::BadLabel { line, .. }
             | IngestError::NotPositive { line, .. }
+            | IngestError::GrossOutlier { line, .. }
             | IngestError::Record { line, .. } => Some(*line),
             _ => None,
         }
@@ -189,6 +214,7 @@ impl IngestError {
             | IngestError::NotFinite { line, .. }
             | IngestError::BadLabel { line, .. }
             | IngestError::NotPositive { line, .. }
+            | IngestError::GrossOutlier { line, .. }
             | IngestError::Record { line, .. } => *line += delta,
             _ => {}
         }

@@ -52,8 +52,16 @@ impl Layout {
             }
             let before = head.len();
             head.extend_from_slice(&buf[..n]);
-            if let Some(i) = memchr::memchr(b'\n', &head[before..]) {
-                break Some(before + i);
+            let lf = memchr::memchr(b'\n', &head[before..]).map(|i| before + i);
+            // A carriage return followed by anything but a line feed before the first line
+            // feed: the file's lines end in a lone CR (old Mac style), which is not read.
+            let scan = &head[before.saturating_sub(1)..lf.unwrap_or(head.len())];
+            if memchr::memchr_iter(b'\r', scan).any(|i| i + 1 < scan.len() && scan[i + 1] != b'\r')
+            {
+                return Err(IngestError::CarriageReturns { file });
+            }
+            if lf.is_some() {
+                break lf;
             }
         };
         let rest_has_data = match line_end {

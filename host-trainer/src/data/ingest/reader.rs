@@ -6,7 +6,7 @@ use std::path::Path;
 
 use indicatif::{ProgressBar, ProgressStyle};
 
-use super::cell::{lossy, parse_f64, parse_label, trim};
+use super::cell::{parse_f64, parse_label, shown, trim};
 use super::{CsvOptions, IngestError, Layout, KEEP_REASONS, PROGRESS_MIN_BYTES};
 
 /// A progress bar over `len` bytes, or `None` when the input is small, stderr is not a
@@ -320,7 +320,7 @@ impl Reader {
                         file: lay.file.clone(),
                         line,
                         column: name.clone(),
-                        value: lossy(cell),
+                        value: shown(cell),
                     })
                 }
                 None if self.allow_missing && cell.is_empty() => f64::NAN,
@@ -336,7 +336,7 @@ impl Reader {
                         file: lay.file.clone(),
                         line,
                         column: name.clone(),
-                        value: lossy(cell),
+                        value: shown(cell),
                         hint,
                     });
                 }
@@ -352,7 +352,7 @@ impl Reader {
                         file: lay.file.clone(),
                         line,
                         column: lay.names[i].clone(),
-                        value: lossy(trim(self.cell(i))),
+                        value: shown(trim(self.cell(i))),
                     })
                 }
             },
