@@ -469,7 +469,8 @@ fn fit_options_f1_robust_shrinkage_and_log() {
             .success();
         serde_json::from_slice::<serde_json::Value>(&a.get_output().stdout).unwrap()
     };
-    let v = run(&["--robust", "--holdout", "0"]);
+    // Few simulated refits: this checks the rows set aside, and a debug build's FAST-MCD is slow.
+    let v = run(&["--robust", "--holdout", "0", "--simulations", "3"]);
     let set_aside: Vec<u64> = serde_json::from_value(v["robust_set_aside_lines"].clone()).unwrap();
     for planted in [102u64, 503, 904] {
         assert!(
@@ -477,7 +478,12 @@ fn fit_options_f1_robust_shrinkage_and_log() {
             "{planted} not in {set_aside:?}"
         );
     }
-    let v = run(&["--shrinkage", "ledoit-wolf"]);
+    let v = run(&["--shrinkage", "ledoit-wolf", "--simulations", "50"]);
+    assert_eq!(
+        v["threshold"]["promise"]["simulation"]["kind"],
+        "simulated-refits"
+    );
+    assert_eq!(v["threshold"]["promise"]["simulation"]["baselines"], 50);
     let intensity = v["shrinkage"][1].as_f64().unwrap();
     assert!((0.0..=1.0).contains(&intensity), "{intensity}");
     let v = run(&["--log", "temp_c"]);
