@@ -469,7 +469,8 @@ fn fit_options_f1_robust_shrinkage_and_log() {
             .success();
         serde_json::from_slice::<serde_json::Value>(&a.get_output().stdout).unwrap()
     };
-    let v = run(&["--robust", "--holdout", "0"]);
+    // Few simulated refits: this checks the rows set aside, and a debug build's FAST-MCD is slow.
+    let v = run(&["--robust", "--holdout", "0", "--simulations", "3"]);
     let set_aside: Vec<u64> = serde_json::from_value(v["robust_set_aside_lines"].clone()).unwrap();
     for planted in [102u64, 503, 904] {
         assert!(
@@ -477,7 +478,12 @@ fn fit_options_f1_robust_shrinkage_and_log() {
             "{planted} not in {set_aside:?}"
         );
     }
-    let v = run(&["--shrinkage", "ledoit-wolf"]);
+    let v = run(&["--shrinkage", "ledoit-wolf", "--simulations", "50"]);
+    assert_eq!(
+        v["threshold"]["promise"]["simulation"]["kind"],
+        "simulated-refits"
+    );
+    assert_eq!(v["threshold"]["promise"]["simulation"]["baselines"], 50);
     let intensity = v["shrinkage"][1].as_f64().unwrap();
     assert!((0.0..=1.0).contains(&intensity), "{intensity}");
     let v = run(&["--log", "temp_c"]);
@@ -936,4 +942,93 @@ fn long_cells_are_cut_and_cr_only_files_are_named() {
     let crlf = baseline_csv(50, 2).replace('\n', "\r\n");
     let base = write(dir.path(), "dos.csv", &crlf);
     fit(&base, &out).args(["--quiet"]).assert().success();
+}
+
+/// The default limit through the binary: with `--independent-rows` it is the Phase II Hotelling
+/// UCL for m = rows fitted, checked against scipy 1.17.1 (`f.ppf`; shared/reference-values.md:
+/// p = 3, m = 40, α = 0.01 gives 14.13021105). 50 rows with the default 0.2 hold-out leave 40.
+#[test]
+fn fit_default_is_the_phase2_hotelling_limit() {
+    let dir = tempfile::tempdir().unwrap();
+    let base = write(dir.path(), "base.csv", &baseline_csv(50, 8));
+    let out = dir.path().join("m.blob");
+    let a = fit(&base, &out)
+        .args(["--quiet", "--json", "--alpha", "0.01", "--independent-rows"])
+        .assert()
+        .success();
+    let v: serde_json::Value = serde_json::from_slice(&a.get_output().stdout).unwrap();
+    let t = &v["threshold"];
+    assert_eq!(t["method"], "hotelling");
+    assert_eq!(t["promise"]["m"], 40);
+    let alarm = t["alarm"].as_f64().unwrap();
+    assert!((alarm - 14.130_211_05).abs() < 1e-5 * 14.13, "{alarm}");
+    assert!((t["expected_false_readings_per_day"].as_f64().unwrap() - 864.0).abs() < 1e-6);
+    assert!(t["at_most_false_readings_per_day"].as_f64().unwrap() > 864.0);
+    assert_eq!(t["promise"]["lengths"][0]["within"], 2.0);
+    // The text names the method, m, both rates and the length check; `inspect` shows the card's method.
+    let text = fit(&base, &out)
+        .args(["--quiet", "--alpha", "0.01"])
+        .assert()
+        .success();
+    let text = String::from_utf8(text.get_output().stdout.clone()).unwrap();
+    for want in [
+        "hotelling (Phase II, F limit)",
+        "m = 40 rows fitted",
+        "expected",
+        "with 90 % confidence",
+        "baseline length",
+    ] {
+        assert!(text.contains(want), "missing `{want}` in\n{text}");
+    }
+    ellipsoid()
+        .args(["inspect", out.to_str().unwrap()])
+        .assert()
+        .success()
+        .stdout(predicate::str::contains("threshold chosen by `hotelling`"));
+}
+
+/// The empirical method at a target its hold-out cannot reach is refused, naming the rows and
+/// the log length it needs; a short baseline is refused under --strict-baseline.
+#[test]
+fn fit_refuses_empirical_beyond_the_data_and_short_baselines_when_strict() {
+    let dir = tempfile::tempdir().unwrap();
+    let base = write(dir.path(), "base.csv", &baseline_csv(300, 9));
+    let out = dir.path().join("m.blob");
+    fit(&base, &out)
+        .args(["--quiet", "--threshold", "empirical", "--rate-hz", "2"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains(
+            "needs at least 172799 held-out rows",
+        ))
+        .stderr(predicate::str::contains("24.0 h of log at 2 Hz"))
+        .stderr(predicate::str::contains("the hold-out has 60"));
+    assert!(!out.exists());
+    // α = 0.05 needs 19 held-out rows; 60 are there: rank ⌈61 · 0.95⌉ = 58.
+    fit(&base, &out)
+        .args([
+            "--quiet",
+            "--threshold",
+            "empirical",
+            "--alpha",
+            "0.05",
+            "--json",
+        ])
+        .assert()
+        .success()
+        .stdout(predicate::str::contains("\"rank\": 58"));
+    // 20 rows fitted are too few for the promise to hold within 2×: refused when strict, a
+    // warning otherwise.
+    let short = write(dir.path(), "short.csv", &baseline_csv(25, 9));
+    fit(&short, &out)
+        .args(["--quiet", "--strict-baseline"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("--strict-baseline"))
+        .stderr(predicate::str::contains("within 2×"));
+    fit(&short, &out)
+        .args(["--quiet"])
+        .assert()
+        .success()
+        .stdout(predicate::str::contains("warning: this baseline is short"));
 }

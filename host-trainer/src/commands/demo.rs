@@ -20,6 +20,7 @@ use crate::fit::Shrinkage;
 use crate::pipeline::evaluate::{
     diagonal_of, model_correlation, qq_points, score_labelled, top_alarms, Scored,
 };
+use crate::pipeline::limits::LimitSpec;
 use crate::pipeline::summary::report_data;
 use crate::pipeline::train::{train, write_outputs, TrainSpec, Trained};
 use crate::report;
@@ -117,7 +118,7 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
         shrinkage: Shrinkage::None,
         robust: false,
         holdout: 0.25,
-        threshold: Method::ChiSquare,
+        threshold: Method::Hotelling,
         alarms_per_day: 1.0,
         rate_hz: scenario::RATE_HZ,
         alpha: None,
@@ -134,6 +135,8 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
         // The model was trained when its baseline ended.
         trained_at: Some(test_start as u64),
         threads: None,
+        limits: LimitSpec::default(),
+        strict_baseline: false,
     };
     let trained = train(&spec)?;
     write_outputs(&trained, &files.blob)?;
@@ -190,20 +193,41 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
     );
     let _ = writeln!(
         s,
-        "Threshold: d² > {:.3} (chi-square({}) at α = {:.2e}, 1 false reading a day); raise after {}, clear below {:.3} after {}.",
+        "Threshold: d² > {:.3} (the Phase II Hotelling limit for {} features and m = {} rows at α = {:.2e}, 1 false reading a day); \
+         raise after {}, clear below {:.3} after {}.",
         trained.thresholds.alarm,
         features.len(),
+        trained.promise.m,
         trained.candidates.alpha,
         trained.policy.raise_after,
         trained.thresholds.clear,
         trained.policy.clear_after
     );
+    let _ = writeln!(
+        s,
+        "  false readings a day above it: expected {:.2}, at most {:.2} with {:.0} % confidence; the readings' time \
+         correlation makes the {} rows count as {:.0} for the mean and {:.0} for the covariance; chi-square({}) would say {:.3}",
+        trained.promise.expected_per_day,
+        trained.promise.at_most_per_day,
+        100.0 * trained.promise.confidence,
+        trained.promise.m,
+        trained.promise.sizes.m_mean,
+        trained.promise.sizes.m_cov(),
+        features.len(),
+        trained.candidates.chi_square
+    );
     if let Some(e) = &trained.candidates.empirical {
-        let _ = writeln!(
-            s,
-            "  (the hold-out's empirical quantile for the same α would be {:.3})",
-            e.value
-        );
+        let _ = match e.value {
+            Some(v) => writeln!(
+                s,
+                "  (the hold-out's empirical quantile for the same α would be {v:.3})"
+            ),
+            None => writeln!(
+                s,
+                "  (the hold-out's {} rows are too few for an empirical quantile at this α: it needs {})",
+                e.n, e.needed
+            ),
+        };
     }
     if let Some(h) = &trained.holdout {
         let _ = writeln!(

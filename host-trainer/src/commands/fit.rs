@@ -11,9 +11,11 @@ use crate::data::card::ModelCard;
 use crate::data::output::Outputs;
 use crate::data::paths::Role;
 use crate::fit::Shrinkage;
+use crate::pipeline::limits::LimitSpec;
 use crate::pipeline::summary::{report_data, summary_json, summary_text};
 use crate::pipeline::train::{check_output_paths, stage_outputs, train, TrainSpec};
 use crate::report;
+use crate::stats::promise::SIM_SEED;
 use crate::stats::threshold::Method;
 
 /// Covariance estimator.
@@ -52,9 +54,30 @@ pub struct FitArgs {
     /// Hold out this fraction of the baseline, from its end (time order), to check the threshold.
     #[arg(long, default_value_t = 0.2, value_name = "FRACTION")]
     pub holdout: f64,
-    /// How to choose the alarm threshold.
-    #[arg(long, value_enum, default_value = "chi-square")]
+    /// How to choose the alarm threshold. `hotelling` (default): the finite-sample limit whose
+    /// expected false-alarm rate is the target; `confidence`: the limit this baseline keeps with
+    /// `--confidence`; `chi-square`: the known-parameter quantile; `empirical`: the hold-out's
+    /// quantile; `f1`: the F1 optimum on `--validation`.
+    #[arg(long, value_enum, default_value = "hotelling")]
     pub threshold: Method,
+    /// Confidence of the "at most … a day" figure and of `--threshold confidence`.
+    #[arg(long, default_value_t = 0.9, value_name = "LEVEL")]
+    pub confidence: f64,
+    /// Simulated baselines for the limits (default: 2000 for a plain fit, 400 with shrinkage,
+    /// 20 with --robust).
+    #[arg(long, value_name = "N")]
+    pub simulations: Option<usize>,
+    /// Seed of those simulations.
+    #[arg(long, value_name = "SEED")]
+    pub simulation_seed: Option<u64>,
+    /// Treat consecutive readings as independent (no effective sample size from their lag-1
+    /// autocorrelation).
+    #[arg(long)]
+    pub independent_rows: bool,
+    /// Refuse a baseline too short for the false-alarm promise to hold within 2× with the stated
+    /// confidence, instead of warning (for pipelines).
+    #[arg(long)]
+    pub strict_baseline: bool,
     /// Target false alarms a day, per reading (before the raise-after debounce).
     #[arg(
         long,
@@ -137,6 +160,13 @@ impl FitArgs {
             sequence: self.sequence,
             trained_at: self.trained_at,
             threads: self.threads,
+            limits: LimitSpec {
+                confidence: self.confidence,
+                sims: self.simulations,
+                seed: self.simulation_seed.unwrap_or(SIM_SEED),
+                independent_rows: self.independent_rows,
+            },
+            strict_baseline: self.strict_baseline,
         }
     }
 }

@@ -90,7 +90,13 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
     match (&card, &card_problem) {
         (None, Some(why)) => println!("  model card refused: {why}"),
         (None, None) => println!("  (no model card beside it: feature names unknown)"),
-        _ => {}
+        (Some(c), _) => println!(
+            "  threshold chosen by `{}` for α = {:.3e} a reading ({:.3} false readings a day at {} Hz), per the model card",
+            c.threshold_method,
+            c.alpha,
+            c.alpha * 86_400.0 * c.rate_hz,
+            c.rate_hz
+        ),
     }
     println!(
         "  alarm when d² > {} for {} reading(s) in a row; clear when d² < {} for {}{}",

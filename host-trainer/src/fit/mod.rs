@@ -43,8 +43,11 @@ mod check;
 mod estimate;
 mod outliers;
 mod read;
+mod refit;
 mod sample;
 mod standardise;
+
+pub use refit::refit_rows;
 
 use check::{f32_check, score_holdout, transform, HoldoutOut};
 use estimate::{condition, estimate, inverse_factor, Estimate};
@@ -162,6 +165,12 @@ pub struct Fitted {
     pub f32_vs_f64_worst_rel: f64,
     /// Things the user should know that did not stop the fit.
     pub warnings: Vec<String>,
+    /// Lag-1 autocorrelation of each (log-transformed) feature over consecutive training rows
+    /// ([`crate::stats::autocorr`]); empty with fewer than two rows.
+    pub lag1: Vec<f64>,
+    /// The plain sample correlation of the training rows, before shrinkage or robust fitting:
+    /// the Gaussian that the simulated limits of a shrinkage fit draw their baselines from.
+    pub sample_corr: Vec<f64>,
 }
 
 impl Fitted {
@@ -252,6 +261,11 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
     }
 
     let n = gathered.moments.n;
+    let lag1 = {
+        let diag: Vec<f64> = (0..p).map(|i| gathered.moments.comoment(i, i)).collect();
+        gathered.lag.rho(&gathered.moments.mean(), &diag)
+    };
+    let sample_corr = gathered.moments.correlation();
     let mut warnings = Vec::new();
     label_like(&layout.features, &sample_rows, &mut warnings);
     if n < p as u64 + 1 {
@@ -345,6 +359,8 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
         holdout_lines: Vec::new(),
         f32_vs_f64_worst_rel: worst,
         warnings,
+        lag1,
+        sample_corr,
     };
     if let Some(h) = hold {
         fitted.add_holdout(h);

@@ -11,6 +11,7 @@ use super::outliers::{short, Extremes, Gate};
 use super::sample::Sample;
 use super::{FitOptions, Shrinkage, BLOCK_ROWS};
 use crate::data::ingest::{self, CsvOptions, IngestError, Layout, Reader};
+use crate::stats::autocorr::{Lag1, Lag1Set};
 use crate::stats::moments::Moments;
 
 /// Where the training part ends and the held-out tail starts.
@@ -58,6 +59,8 @@ pub(super) struct Gathered {
     pub(super) skipped: u64,
     /// Why the first few were skipped.
     pub(super) reasons: Vec<String>,
+    /// Lag-1 co-moments of consecutive rows, one part a reader thread.
+    pub(super) lag: Lag1Set,
 }
 
 /// Read the training part `[data_start, train_end)` on `opts.threads` threads. The first error in
@@ -121,6 +124,7 @@ pub(super) fn read_training(
         lines: Vec::new(),
         skipped: 0,
         reasons: Vec::new(),
+        lag: Lag1Set::default(),
     };
     let mut base = 2u64; // the first data line
     for mut out in outs {
@@ -130,6 +134,7 @@ pub(super) fn read_training(
             return Err(e.into());
         }
         g.moments.merge(&out.moments);
+        g.lag.add(out.lag);
         g.sample.absorb(out.sample);
         g.extremes.merge(&out.extremes);
         g.rows.append(&mut out.rows);
@@ -167,6 +172,7 @@ struct Job<'a> {
 /// What a reader thread found. Lines are relative to its range (the first is 1).
 struct WorkerOut {
     moments: Moments,
+    lag: Lag1,
     sample: Sample,
     extremes: Extremes,
     rows: Vec<f64>,
@@ -182,6 +188,7 @@ impl Job<'_> {
         let p = self.layout.features.len();
         let mut out = WorkerOut {
             moments: Moments::new(p),
+            lag: Lag1::new(p),
             sample: Sample::new(p),
             extremes: Extremes::new(p),
             rows: Vec::new(),
@@ -235,6 +242,7 @@ impl Job<'_> {
                                     Some(e)
                                 }
                                 None => {
+                                    out.lag.push(t);
                                     out.sample.offer(row.byte, row.values);
                                     if self.keep_rows {
                                         out.rows.extend_from_slice(t);

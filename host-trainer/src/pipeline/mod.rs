@@ -1,7 +1,9 @@
 //! The work the commands share, as functions that take settings and return values: training a
-//! model ([`train`]), what a fit tells ([`summary`]) and scoring a labelled file ([`evaluate`]).
+//! model ([`train`]), its threshold candidates and their promises ([`limits`]), what a fit tells
+//! ([`summary`]) and scoring a labelled file ([`evaluate`]).
 //! Nothing here parses a command line or prints.
 
 pub mod evaluate;
+pub mod limits;
 pub mod summary;
 pub mod train;

@@ -164,8 +164,8 @@ fn diagnostics_section(s: &mut String, t: &Trained) {
     if d.mardia_skewness.p_value < 0.01 || d.mardia_kurtosis.p_value < 0.01 {
         let _ = writeln!(
             s,
-            "    the baseline is not multivariate normal, so the chi-square threshold's false-alarm \
-             rate is approximate: check it against the hold-out below"
+            "    the baseline is not multivariate normal, so the Gaussian false-alarm figures below \
+             are approximate: check them against the hold-out"
         );
     }
     for name in &d.log_suggestions {
@@ -181,12 +181,12 @@ fn diagnostics_section(s: &mut String, t: &Trained) {
     );
 }
 
-/// Every candidate threshold, the chosen one, the policy and the promised rate.
+/// Every candidate threshold, the chosen one, the policy and the promised rates.
 fn threshold_section(s: &mut String, t: &Trained) {
-    let f = &t.fitted;
-    let n = f.features.len();
+    let n = t.fitted.features.len();
     s.push('\n');
     let c = &t.candidates;
+    let pr = &t.promise;
     let _ = writeln!(
         s,
         "Threshold on d² (target: α = {:.3e} per reading = {:.3} false readings a day at {} Hz):",
@@ -194,49 +194,71 @@ fn threshold_section(s: &mut String, t: &Trained) {
         c.alpha * SECONDS_PER_DAY * t.rate_hz,
         t.rate_hz
     );
-    let mark = |m: Method| if m == t.method { "  <- chosen" } else { "" };
+    sizes_lines(s, t);
+    let level = 100.0 * pr.confidence;
     let _ = writeln!(
         s,
-        "  chi-square({n}) quantile at 1 − α:   {:>10.4}{}",
-        c.chi_square,
-        mark(Method::ChiSquare)
+        "  {:<34} {:>10}  {:>16}  {:>20}",
+        "candidate",
+        "d²",
+        "expected a day",
+        format!("at most a day ({level:.0} %)")
     );
+    for (name, value, expected, at_most) in &pr.candidates {
+        let method = match name.as_str() {
+            "hotelling" => Method::Hotelling,
+            "confidence" => Method::Confidence,
+            "chi-square" => Method::ChiSquare,
+            "empirical" => Method::Empirical,
+            _ => Method::F1,
+        };
+        let label = match method {
+            Method::Hotelling
+                if t.promise
+                    .simulation
+                    .as_ref()
+                    .is_some_and(|m| m.kind == "simulated-refits") =>
+            {
+                "hotelling (simulated refits)".to_string()
+            }
+            Method::Hotelling => "hotelling (Phase II, F limit)".to_string(),
+            Method::Confidence => format!("confidence ({level:.0} % of baselines)"),
+            Method::ChiSquare => format!("chi-square({n}) (known mean, cov.)"),
+            Method::Empirical => "empirical hold-out quantile".to_string(),
+            Method::F1 => format!("F1-optimal (F1 {:.3})", c.f1.map_or(f64::NAN, |f| f.1)),
+        };
+        let _ = writeln!(
+            s,
+            "  {label:<34} {value:>10.4}  {expected:>16.3}  {at_most:>20.3}{}",
+            if method == t.method {
+                "  <- chosen"
+            } else {
+                ""
+            }
+        );
+    }
+    if let Some(why) = &c.hotelling_problem {
+        let _ = writeln!(s, "  finite-sample limit: none: {why}");
+    }
     match &c.empirical {
-        Some(e) => {
+        Some(e) if e.value.is_none() => {
             let _ = writeln!(
                 s,
-                "  empirical hold-out quantile:     {:>10.4}  ({} of {} held-out readings above{}){}",
-                e.value,
-                e.above,
-                e.n,
-                if e.beyond_data {
-                    "; α·n < 1, so this is the largest value seen"
-                } else {
-                    ""
-                },
-                mark(Method::Empirical)
+                "  empirical hold-out quantile: none: at α = {:.2e} it needs at least {} held-out rows ({} at {} Hz), the hold-out has {}",
+                c.alpha,
+                e.needed,
+                threshold::duration_words(e.needed as f64 / t.rate_hz),
+                t.rate_hz,
+                e.n
             );
         }
+        Some(_) => {}
         None => {
-            let _ = writeln!(s, "  empirical hold-out quantile:     (no hold-out)");
+            let _ = writeln!(s, "  empirical hold-out quantile: (no hold-out)");
         }
     }
-    match &c.f1 {
-        Some((thr, f1)) => {
-            let _ = writeln!(
-                s,
-                "  F1-optimal on validation:        {:>10.4}  (F1 {:.3}){}",
-                thr,
-                f1,
-                mark(Method::F1)
-            );
-        }
-        None => {
-            let _ = writeln!(
-                s,
-                "  F1-optimal on validation:        (no --validation file)"
-            );
-        }
+    if c.f1.is_none() {
+        let _ = writeln!(s, "  F1-optimal on validation: (no --validation file)");
     }
     let chosen = f64::from(t.thresholds.alarm);
     let _ = writeln!(
@@ -248,14 +270,114 @@ fn threshold_section(s: &mut String, t: &Trained) {
         t.policy.clear_after,
         if t.policy.latch { "; latched" } else { "" }
     );
-    let tail = threshold::chi_square_tail(n, chosen);
     let _ = writeln!(
         s,
-        "  expected under the Gaussian model: {:.3e} of readings above, {:.3} a day at {} Hz (before the raise-after debounce)",
-        tail,
-        tail * SECONDS_PER_DAY * t.rate_hz,
-        t.rate_hz
+        "  false readings a day above it at {} Hz (before the raise-after debounce): expected {:.3} (the mean over \
+         baselines like this one); at most {:.3} a day with {level:.0} % confidence for this baseline",
+        t.rate_hz, pr.expected_per_day, pr.at_most_per_day
     );
+    length_lines(s, t);
+}
+
+/// m, the time correlation and the effective sizes; how the limit was worked out.
+fn sizes_lines(s: &mut String, t: &Trained) {
+    let pr = &t.promise;
+    let lag = &pr.lag1;
+    if lag.is_empty() || !pr.time_correlation_used {
+        let _ = writeln!(
+            s,
+            "  m = {} rows fitted{}",
+            pr.m,
+            if pr.time_correlation_used {
+                ""
+            } else {
+                ", treated as independent (--independent-rows)"
+            }
+        );
+    } else {
+        let lo = lag.iter().copied().fold(f64::INFINITY, f64::min);
+        let hi = lag.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+        let _ = writeln!(
+            s,
+            "  m = {} rows fitted; lag-1 autocorrelation of the features {:.2} to {:.2}, so they count as {:.0} \
+             independent rows for the mean and {:.0} for the covariance (effective m, Bayley–Hammersley)",
+            pr.m,
+            lo,
+            hi,
+            pr.sizes.m_mean,
+            pr.sizes.m_cov()
+        );
+    }
+    if let Some(sim) = &pr.simulation {
+        if sim.kind == "simulated-refits" {
+            let _ = writeln!(
+                s,
+                "  limits calibrated by {} simulated baselines of {} rows drawn from the fitted Gaussian and refitted \
+                 with {} (seed {:#x}; Monte-Carlo standard error of the expected rate {:.1} %)",
+                sim.baselines,
+                sim.rows_each,
+                sim.estimator,
+                sim.seed,
+                100.0 * sim.relative_standard_error
+            );
+        } else {
+            let _ = writeln!(
+                s,
+                "  expected rates from the Phase II Hotelling (F) distribution; the {:.0} % figures from {} simulated \
+                 baselines (seed {:#x})",
+                100.0 * pr.confidence,
+                sim.baselines,
+                sim.seed
+            );
+        }
+    }
+}
+
+/// The baseline-length check.
+fn length_lines(s: &mut String, t: &Trained) {
+    let pr = &t.promise;
+    let parts: Vec<String> = pr
+        .lengths
+        .iter()
+        .map(|l| {
+            if l.rows_fitted.is_finite() {
+                format!(
+                    "within {}× from {:.0} rows fitted ({:.0} logged with the {:.0} % hold-out, {} at {} Hz): {}",
+                    l.within,
+                    l.rows_fitted,
+                    pr.rows_logged(l),
+                    100.0 * pr.holdout,
+                    threshold::duration_words(pr.rows_logged(l) / t.rate_hz),
+                    t.rate_hz,
+                    if l.met { "met" } else { "not met" }
+                )
+            } else {
+                format!("within {}×: beyond 10⁹ rows", l.within)
+            }
+        })
+        .collect();
+    if !parts.is_empty() {
+        let _ = writeln!(
+            s,
+            "  baseline length for the {:.0} % figure to stay {}",
+            100.0 * pr.confidence,
+            parts.join("; ")
+        );
+    }
+    if let Some(l) = pr.lengths.first().filter(|l| !l.met) {
+        let _ = writeln!(
+            s,
+            "  warning: this baseline is short: with {} rows fitted, one baseline in {:.0} gives a model that alarms \
+             more than {}× as often as the expected figure; log at least {:.0} rows ({}) for the promise to hold \
+             within {}× (--strict-baseline refuses such a fit)",
+            pr.m,
+            1.0 / (1.0 - pr.confidence),
+            l.within,
+            pr.rows_logged(l),
+            threshold::duration_words(pr.rows_logged(l) / t.rate_hz),
+            l.within
+        );
+    }
 }
 
 /// The held-out baseline replayed through the alarm state machine.
@@ -267,6 +389,18 @@ fn holdout_section(s: &mut String, t: &Trained) {
                 "  held-out baseline replayed through the alarm state machine: {} readings ({:.1} h), {} above ({:.3e}), {} alarms raised = {:.2} false alarms a day (95 % upper bound {:.1})",
                 h.readings, h.hours, h.readings_above, h.fraction_above, h.alarms_raised, h.false_alarms_per_day, h.false_alarms_per_day_upper95
             );
+            let target_day = t.candidates.alpha * SECONDS_PER_DAY * t.rate_hz;
+            if h.alarms_raised == 0 && h.false_alarms_per_day_upper95 > 2.0 * target_day {
+                let _ = writeln!(
+                    s,
+                    "    no alarm in {:.1} h bounds the rate only below {:.1} a day (95 %), which says little against a target \
+                     of {:.3} a day: {} of hold-out with no alarm would be needed to show the target",
+                    h.hours,
+                    h.false_alarms_per_day_upper95,
+                    target_day,
+                    threshold::duration_words(3.0 / target_day * SECONDS_PER_DAY)
+                );
+            }
             if !h.alarm_lines.is_empty() {
                 let shown: Vec<String> = h.alarm_lines.iter().map(u64::to_string).collect();
                 let _ = writeln!(
@@ -336,7 +470,10 @@ pub fn summary_json(t: &Trained) -> serde_json::Value {
             "alarm": t.thresholds.alarm,
             "clear": t.thresholds.clear,
             "candidates": t.candidates,
-            "expected_fraction_above": threshold::chi_square_tail(f.features.len(), f64::from(t.thresholds.alarm)),
+            "promise": t.promise,
+            "expected_false_readings_per_day": t.promise.expected_per_day,
+            "at_most_false_readings_per_day": t.promise.at_most_per_day,
+            "confidence": t.promise.confidence,
         },
         "policy": {
             "raise_after": t.policy.raise_after,
@@ -357,8 +494,14 @@ pub fn report_data(t: &Trained) -> report::ReportData {
     let f = &t.fitted;
     let c = &t.candidates;
     let mut others = vec![("chi-square".to_string(), c.chi_square)];
-    if let Some(e) = &c.empirical {
-        others.push(("empirical".to_string(), e.value));
+    if let Some(v) = c.hotelling.filter(|_| t.method != Method::Hotelling) {
+        others.push(("hotelling".to_string(), v));
+    }
+    if let Some(v) = c.confidence.filter(|_| t.method != Method::Confidence) {
+        others.push((format!("{:.0} % confidence", 100.0 * c.confidence_level), v));
+    }
+    if let Some(v) = c.empirical.and_then(|e| e.value) {
+        others.push(("empirical".to_string(), v));
     }
     if let Some((thr, _)) = &c.f1 {
         others.push(("F1-optimal".to_string(), *thr));
@@ -399,7 +542,43 @@ pub fn report_data(t: &Trained) -> report::ReportData {
             ),
             (
                 "alarm threshold (d²)".into(),
-                format!("{:.4}", t.thresholds.alarm),
+                format!("{:.4} ({})", t.thresholds.alarm, method_name(t.method)),
+            ),
+            (
+                "m (effective m: mean, covariance)".into(),
+                format!(
+                    "{} ({:.0}, {:.0})",
+                    t.promise.m,
+                    t.promise.sizes.m_mean,
+                    t.promise.sizes.m_cov()
+                ),
+            ),
+            (
+                "expected false readings a day".into(),
+                format!("{:.3}", t.promise.expected_per_day),
+            ),
+            (
+                format!(
+                    "at most, with {:.0} % confidence",
+                    100.0 * t.promise.confidence
+                ),
+                format!("{:.3} a day", t.promise.at_most_per_day),
+            ),
+            (
+                "baseline length check".into(),
+                t.promise
+                    .lengths
+                    .iter()
+                    .map(|l| {
+                        format!(
+                            "within {}×: {:.0} rows fitted needed, {}",
+                            l.within,
+                            l.rows_fitted,
+                            if l.met { "met" } else { "not met" }
+                        )
+                    })
+                    .collect::<Vec<_>>()
+                    .join("; "),
             ),
             (
                 "clear threshold (d²)".into(),

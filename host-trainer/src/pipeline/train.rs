@@ -19,8 +19,9 @@ use crate::data::paths::{refuse_clashes, Role};
 use crate::device::dims::{decode_any, AnyModel};
 use crate::device::replay::to_device;
 use crate::fit::{fit_file, FitOptions, Fitted, Shrinkage};
+use crate::pipeline::limits::{self, LimitSpec, Promise};
 use crate::stats::metrics;
-use crate::stats::threshold::{self, Candidates, Method, Target, SECONDS_PER_DAY};
+use crate::stats::threshold::{Candidates, Method, Target, SECONDS_PER_DAY};
 
 /// What to train: the settings of `ellipsoid fit` that shape the model, without its outputs.
 #[derive(Clone, Debug)]
@@ -61,6 +62,10 @@ pub struct TrainSpec {
     pub trained_at: Option<u64>,
     /// Worker threads (default: all cores).
     pub threads: Option<usize>,
+    /// Confidence, simulations and time correlation of the limits.
+    pub limits: LimitSpec,
+    /// Refuse a baseline shorter than the promise needs to hold within 2× (instead of warning).
+    pub strict_baseline: bool,
 }
 
 /// Above this share of rows set aside by FAST-MCD, `fit` warns that the baseline is probably not
@@ -106,6 +111,8 @@ pub struct Trained {
     pub fitted: Fitted,
     /// Every candidate threshold.
     pub candidates: Candidates,
+    /// What the chosen threshold promises, and the baseline length check.
+    pub promise: Promise,
     /// The method used for the blob.
     pub method: Method,
     /// Thresholds in the blob.
@@ -309,7 +316,6 @@ pub fn train(a: &TrainSpec) -> Result<Trained> {
             .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get())),
     };
     let fitted = fit_file(&a.baseline, &opts)?;
-    let n = fitted.features.len();
     let alpha = target.alpha();
     let meta = ModelMeta {
         model_id: a.model_id.unwrap_or_else(|| derived_id(&fitted)),
@@ -346,13 +352,34 @@ pub fn train(a: &TrainSpec) -> Result<Trained> {
             metrics::f1_optimal_threshold(&scores, &labels)
         }
     };
-    let candidates = Candidates {
+    let (candidates, mut promise, rates_at) = limits::candidates(
+        &fitted,
         alpha,
-        chi_square: threshold::chi_square(n, alpha),
-        empirical: threshold::empirical(&fitted.holdout_d2, alpha),
+        a.rate_hz,
+        a.holdout,
+        a.robust,
+        a.shrinkage,
         f1,
-    };
+        &a.limits,
+    )?;
     let alarm = candidates.pick(a.threshold)?;
+    limits::settle(&mut promise, rates_at.as_ref(), alarm, a.rate_hz);
+    if a.strict_baseline {
+        if let Some(short) = promise.lengths.first().filter(|l| !l.met) {
+            anyhow::bail!(
+                "{}: {} rows fitted, but the false-alarm promise holds within {}× (with {:.0} % confidence) only from                  {} rows fitted, {} rows logged with the {:.0} % hold-out ({} at {} Hz); log a longer baseline,                  or drop --strict-baseline to fit anyway with a warning",
+                a.baseline.display(),
+                promise.m,
+                short.within,
+                100.0 * promise.confidence,
+                short.rows_fitted,
+                promise.rows_logged(short),
+                100.0 * a.holdout,
+                limits::duration_words(promise.rows_logged(short) / a.rate_hz),
+                a.rate_hz
+            );
+        }
+    }
     anyhow::ensure!(
         alarm.is_finite() && alarm > 0.0 && alarm < f64::from(f32::MAX),
         "the {:?} threshold came out as {alarm}, which cannot be used",
@@ -395,6 +422,7 @@ pub fn train(a: &TrainSpec) -> Result<Trained> {
     Ok(Trained {
         fitted,
         candidates,
+        promise,
         method: a.threshold,
         thresholds,
         policy,
@@ -410,6 +438,8 @@ pub fn train(a: &TrainSpec) -> Result<Trained> {
 /// The name a method has on the command line and in the card.
 pub fn method_name(m: Method) -> &'static str {
     match m {
+        Method::Hotelling => "hotelling",
+        Method::Confidence => "confidence",
         Method::ChiSquare => "chi-square",
         Method::Empirical => "empirical",
         Method::F1 => "f1",
