@@ -186,6 +186,15 @@ impl fmt::Display for ModelError {
             ModelError::Dimension { n } => {
                 write!(f, "dimension {n} is outside 1..={MAX_FEATURES}")
             }
+            // The thresholds belong to the model, not to a feature: index 0 is the alarm
+            // threshold, 1 the clear threshold.
+            ModelError::NotFinite {
+                field: Field::Threshold,
+                index,
+            } => {
+                let which = if *index == 0 { "alarm" } else { "clear" };
+                write!(f, "the {which} threshold is not finite")
+            }
             ModelError::NotFinite { field, index } => {
                 write!(f, "{field} of feature {index} is not finite")
             }
@@ -342,6 +351,19 @@ mod tests {
                 index: 1
             })
         );
+        let mut p = good();
+        p.thresholds.alarm = f32::INFINITY;
+        let e = p.validate().unwrap_err();
+        assert_eq!(
+            e,
+            ModelError::NotFinite {
+                field: Field::Threshold,
+                index: 0
+            }
+        );
+        let mut text = heapless::String::<64>::new();
+        core::fmt::write(&mut text, format_args!("{e}")).unwrap();
+        assert_eq!(text.as_str(), "the alarm threshold is not finite");
         let mut p = good();
         p.preprocess.scale[0] = -1.0;
         assert_eq!(p.validate(), Err(ModelError::Scale { index: 0 }));

@@ -1032,3 +1032,58 @@ fn fit_refuses_empirical_beyond_the_data_and_short_baselines_when_strict() {
         .success()
         .stdout(predicate::str::contains("warning: this baseline is short"));
 }
+
+/// A card with the wrong number of names (or a name twice), even with its digest recomputed, is
+/// refused by name; `inspect` reports it instead of indexing past the names (it panicked before).
+#[test]
+fn a_card_must_name_each_feature_once() {
+    use ellipsoid_trainer::data::card::{names_digest, ModelCard};
+    let dir = tempfile::tempdir().unwrap();
+    let model = fit_ok(dir.path());
+    let card_path = model.with_extension("json");
+    let original: ModelCard =
+        serde_json::from_str(&std::fs::read_to_string(&card_path).unwrap()).unwrap();
+    let readings = write(
+        dir.path(),
+        "r.csv",
+        "current_a,pressure_bar,temp_c\n10,3,40\n",
+    );
+    let m = model.to_str().unwrap();
+    for (features, why) in [
+        (original.features[..2].to_vec(), "names 2 features"),
+        (
+            vec![
+                original.features[0].clone(),
+                original.features[0].clone(),
+                original.features[2].clone(),
+            ],
+            "twice",
+        ),
+    ] {
+        let mut card = original.clone();
+        card.names_digest = names_digest(card.blob_crc, &features, &card.log_features);
+        card.features = features;
+        std::fs::write(&card_path, serde_json::to_string(&card).unwrap()).unwrap();
+        ellipsoid()
+            .args(["inspect", m])
+            .assert()
+            .success()
+            .stdout(predicate::str::contains("model card refused"))
+            .stdout(predicate::str::contains(why));
+        let o = dir.path().join("o.csv");
+        ellipsoid()
+            .args([
+                "replay",
+                "--model",
+                m,
+                "--input",
+                readings.to_str().unwrap(),
+            ])
+            .args(["--out", o.to_str().unwrap()])
+            .assert()
+            .failure()
+            .stderr(predicate::str::contains("m.json"))
+            .stderr(predicate::str::contains(why));
+        assert!(!o.exists());
+    }
+}

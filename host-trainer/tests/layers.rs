@@ -35,30 +35,115 @@ fn sources(dir: &Path, out: &mut Vec<PathBuf>) {
     }
 }
 
-/// The top-level modules a source text names through `crate::` (plain and grouped `use`).
-fn uses(text: &str) -> Vec<String> {
-    let mut found = Vec::new();
-    let ident = |s: &str| -> String {
-        s.chars()
-            .take_while(|c| c.is_ascii_alphanumeric() || *c == '_')
-            .collect()
+/// The source without comments, and without the white space around `::`, braces and commas, so
+/// that `crate :: x`, a path broken over lines or a brace in a comment cannot hide a path.
+fn squeeze(text: &str) -> String {
+    let mut bare = String::with_capacity(text.len());
+    let mut chars = text.chars().peekable();
+    while let Some(c) = chars.next() {
+        match (c, chars.peek()) {
+            ('/', Some('/')) => {
+                for d in chars.by_ref() {
+                    if d == '\n' {
+                        break;
+                    }
+                }
+                bare.push(' ');
+            }
+            ('/', Some('*')) => {
+                chars.next();
+                let mut prev = ' ';
+                for d in chars.by_ref() {
+                    if prev == '*' && d == '/' {
+                        break;
+                    }
+                    prev = d;
+                }
+                bare.push(' ');
+            }
+            (c, _) if c.is_whitespace() => bare.push(' '),
+            (c, _) => bare.push(c),
+        }
+    }
+    let tight = |c: char| matches!(c, ':' | '{' | '}' | ',');
+    let chars: Vec<char> = bare.chars().collect();
+    let mut out = String::with_capacity(bare.len());
+    for (i, &c) in chars.iter().enumerate() {
+        if c == ' ' {
+            let prev = out.chars().last();
+            let next = chars[i + 1..].iter().find(|d| **d != ' ');
+            if prev.is_none_or(|p| p == ' ' || tight(p)) || next.is_none_or(|n| tight(*n)) {
+                continue;
+            }
+        }
+        out.push(c);
+    }
+    out
+}
+
+fn ident(s: &str) -> String {
+    s.chars()
+        .take_while(|c| c.is_ascii_alphanumeric() || *c == '_')
+        .collect()
+}
+
+/// The first names of a path or of a (nested) group: `a::b` gives `a`, `{a,b::{c},d}` gives a, b, d.
+fn heads(rest: &str, found: &mut Vec<String>) {
+    let Some(group) = rest.strip_prefix('{') else {
+        let name = ident(rest);
+        if !name.is_empty() {
+            found.push(name);
+        }
+        return;
     };
-    for (i, _) in text.match_indices("crate::") {
-        let rest = &text[i + "crate::".len()..];
-        if let Some(group) = rest.strip_prefix('{') {
-            let end = group.find('}').unwrap_or(group.len());
-            for item in group[..end].split(',') {
-                let name = ident(item.trim());
+    let mut depth = 0usize;
+    let mut at_item = true;
+    for (i, c) in group.char_indices() {
+        match c {
+            '{' => depth += 1,
+            '}' if depth == 0 => break,
+            '}' => depth -= 1,
+            ',' if depth == 0 => at_item = true,
+            _ if at_item && depth == 0 => {
+                let name = ident(&group[i..]);
                 if !name.is_empty() {
                     found.push(name);
                 }
+                at_item = false;
             }
-        } else {
-            let name = ident(rest);
-            if !name.is_empty() {
-                found.push(name);
-            }
+            _ => {}
         }
+    }
+}
+
+/// The top-level modules a source file names, through `crate::` paths and through `super::`
+/// chains that climb to the crate root. `module` is the file's module path (`["stats", "mcd"]`
+/// for `stats/mcd/mod.rs`).
+fn uses(text: &str, module: &[String]) -> Vec<String> {
+    let text = squeeze(text);
+    let mut found = Vec::new();
+    for (i, _) in text.match_indices("crate::") {
+        heads(&text[i + "crate::".len()..], &mut found);
+    }
+    let mut i = 0;
+    while let Some(k) = text[i..].find("super::") {
+        let start = i + k;
+        // Only the first `super::` of a chain (not one preceded by another).
+        let preceded = text[..start].ends_with("super::");
+        let mut end = start;
+        let mut climbs = 0;
+        while text[end..].starts_with("super::") {
+            end += "super::".len();
+            climbs += 1;
+        }
+        if !preceded && climbs >= module.len() {
+            // At the crate root only a top-level module counts; another name means the chain
+            // started inside an inline module (`mod tests`) and stayed in this layer.
+            let mut names = Vec::new();
+            heads(&text[end..], &mut names);
+            found.extend(names.into_iter().filter(|n| height(n).is_some()));
+        }
+        i = end;
     }
     found
 }
@@ -84,7 +169,13 @@ fn layers_point_down() {
         }
         let own_h = height(own).unwrap_or_else(|| panic!("{rel:?}: module `{own}` is in no layer"));
         let text = fs::read_to_string(file).expect("read source");
-        for name in uses(&text) {
+        let module: Vec<String> = rel
+            .with_extension("")
+            .components()
+            .map(|c| c.as_os_str().to_string_lossy().into_owned())
+            .filter(|c| c != "mod")
+            .collect();
+        for name in uses(&text, &module) {
             let target = MACROS
                 .iter()
                 .find(|(m, _)| *m == name)
@@ -113,6 +204,36 @@ fn layers_point_down() {
 
 #[test]
 fn the_scan_sees_plain_and_grouped_paths() {
+    let here = ["stats".to_string(), "threshold".to_string()];
     let text = "use crate::stats::metrics;\nuse crate::{data, report::render};\nlet x = crate::with_dim!(n, N => 1);";
-    assert_eq!(uses(text), ["stats", "data", "report", "with_dim"]);
+    assert_eq!(uses(text, &here), ["stats", "data", "report", "with_dim"]);
+}
+
+/// Paths that a plain text search misses: spaced, broken over lines, nested groups, braces in
+/// comments, and `super::` chains that climb to the crate root.
+#[test]
+fn the_scan_sees_through_spacing_nesting_and_super_chains() {
+    let here = ["stats".to_string(), "threshold".to_string()];
+    let cases = [
+        ("use crate :: cli as up;", vec!["cli"]),
+        ("use crate::\n    commands::fit;", vec!["commands"]),
+        (
+            "use crate::{stats::{moments as m}, pipeline::train};",
+            vec!["stats", "pipeline"],
+        ),
+        (
+            "use crate::{ /* { */ data, // }\n commands};",
+            vec!["data", "commands"],
+        ),
+        ("use super::super::commands::fit as up;", vec!["commands"]),
+        ("use super::moments::Moments;", vec![]),
+        ("use super::{super::cli, x};", vec![]),
+    ];
+    for (text, want) in cases {
+        assert_eq!(uses(text, &here), want, "{text}");
+    }
+    // From a file one level deeper, two `super::` stay inside the layer.
+    let deeper = ["stats".to_string(), "mcd".to_string(), "tests".to_string()];
+    assert!(uses("use super::super::moments;", &deeper).is_empty());
+    assert_eq!(uses("use super::super::super::cli;", &deeper), ["cli"]);
 }

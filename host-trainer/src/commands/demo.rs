@@ -24,6 +24,7 @@ use crate::pipeline::limits::LimitSpec;
 use crate::pipeline::summary::report_data;
 use crate::pipeline::train::{train, write_outputs, TrainSpec, Trained};
 use crate::report;
+use crate::stats::metrics::Evaluation;
 use crate::stats::threshold::Method;
 use clap::Args;
 
@@ -178,6 +179,29 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
     ))?;
     output::write_bytes(&files.report, html.as_bytes())?;
 
+    let s = demo_summary(
+        seed, &data, &trained, &features, &full, &catches, &eval, &eval_diag, &files,
+    );
+    output::write_bytes(&files.summary, s.as_bytes())?;
+    if !quiet {
+        print!("{s}");
+    }
+    Ok(s)
+}
+
+/// What the demo found, in plain words, with where every file is.
+#[allow(clippy::too_many_arguments)]
+fn demo_summary(
+    seed: u64,
+    data: &scenario::DemoData,
+    trained: &Trained,
+    features: &[String],
+    full: &Scored,
+    catches: &[(Catch, Catch)],
+    eval: &Evaluation,
+    eval_diag: &Evaluation,
+    files: &DemoFiles,
+) -> String {
     let mut s = String::new();
     let _ = writeln!(
         s,
@@ -248,7 +272,7 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
         .map(|e| e.name.len())
         .max()
         .unwrap_or(10);
-    for (e, (c_full, c_diag)) in data.episodes.iter().zip(&catches) {
+    for (e, (c_full, c_diag)) in data.episodes.iter().zip(catches) {
         let top = full.rows[e.start..e.end.min(full.rows.len())]
             .iter()
             .find_map(|r| r.top_feature())
@@ -267,7 +291,7 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
     let missed_by_diag: Vec<&str> = data
         .episodes
         .iter()
-        .zip(&catches)
+        .zip(catches)
         .filter(|(_, (f, d))| f.delay.is_some() && d.delay.is_none())
         .map(|(e, _)| e.name)
         .collect();
@@ -308,11 +332,7 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
         s,
         "\nAn Ellipsoid alarm is an aid, not a safety function: protection and shutdown stay with the\nmachine maker's devices, local codes and licensed practice."
     );
-    output::write_bytes(&files.summary, s.as_bytes())?;
-    if !quiet {
-        print!("{s}");
-    }
-    Ok(s)
+    s
 }
 
 fn fmt_opt(v: Option<f64>) -> String {

@@ -119,6 +119,21 @@ impl ModelCard {
                 blob.len()
             );
         }
+        // The CRC above says these bytes are the blob the card was written for; its header holds
+        // N, so a card must name exactly N distinct features.
+        let n = ellipsoid_core::blob::Header::parse(blob).map(|h| usize::from(h.n));
+        if let Some(n) = n.ok().filter(|n| card.features.len() != *n) {
+            bail!(
+                "{}: names {} features, but {} holds a model of {n}",
+                path.display(),
+                card.features.len(),
+                blob_path.display()
+            );
+        }
+        let mut seen = std::collections::HashSet::new();
+        if let Some(twice) = card.features.iter().find(|f| !seen.insert(f.as_str())) {
+            bail!("{}: names the feature `{twice}` twice", path.display());
+        }
         let want = names_digest(card.blob_crc, &card.features, &card.log_features);
         if card.names_digest != want {
             bail!(

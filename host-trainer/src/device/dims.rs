@@ -269,8 +269,19 @@ impl<const N: usize> AnyModel for Model<N> {
 /// Read and decode a blob file, with errors that name the file (and say plainly when the blob's
 /// dimension is one no `Model<N>` exists for).
 pub fn decode_file(path: &std::path::Path) -> anyhow::Result<(Vec<u8>, Box<dyn AnyModel>)> {
-    let bytes = std::fs::read(path)
+    use std::io::Read as _;
+    // Read no more than the largest blob and one byte: `/dev/zero` or a log named by mistake
+    // is refused at once instead of being read whole.
+    let limit = blob::max_len(MAX_DIM);
+    let mut bytes = Vec::new();
+    std::fs::File::open(path)
+        .and_then(|f| f.take(limit as u64 + 1).read_to_end(&mut bytes))
         .map_err(|e| anyhow::anyhow!("cannot read the model blob {}: {e}", path.display()))?;
+    anyhow::ensure!(
+        bytes.len() <= limit,
+        "{}: longer than any model blob ({limit} bytes at most): not a blob",
+        path.display()
+    );
     if let Ok(h) = blob::Header::parse(&bytes) {
         anyhow::ensure!(
             (1..=MAX_DIM).contains(&usize::from(h.n)),

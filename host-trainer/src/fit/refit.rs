@@ -4,8 +4,8 @@
 use anyhow::Result;
 
 use super::estimate::estimate;
-use super::read::Gathered;
 use super::outliers::Extremes;
+use super::read::Gathered;
 use super::sample::Sample;
 use super::Shrinkage;
 use crate::stats::autocorr::Lag1Set;
