@@ -31,7 +31,7 @@
 //! * the fit of a file, in parallel: [`fit`];
 //! * the core from the host: [`device::dims`] (run-time N), [`device::replay`];
 //! * the report: [`report`];
-//! * what `fit` and the demo share: [`pipeline::train`], [`pipeline::summary`],
+//! * what `fit` and the demo share: [`pipeline::train`], [`pipeline::summary`], [`pipeline::fit_report`],
 //!   [`pipeline::evaluate`];
 //! * the verbs: [`commands`], assembled by [`cli`].
 #![forbid(unsafe_code)]

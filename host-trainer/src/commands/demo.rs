@@ -20,8 +20,8 @@ use crate::fit::Shrinkage;
 use crate::pipeline::evaluate::{
     diagonal_of, model_correlation, qq_points, score_labelled, top_alarms, Scored,
 };
+use crate::pipeline::fit_report::report_data;
 use crate::pipeline::limits::LimitSpec;
-use crate::pipeline::summary::report_data;
 use crate::pipeline::train::{train, write_outputs, TrainSpec, Trained};
 use crate::report;
 use crate::stats::metrics::Evaluation;

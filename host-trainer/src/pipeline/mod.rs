@@ -4,6 +4,7 @@
 //! Nothing here parses a command line or prints.
 
 pub mod evaluate;
+pub mod fit_report;
 pub mod limits;
 pub mod summary;
 pub mod train;

@@ -35,7 +35,7 @@ pub struct Lag1 {
     sum_cross: Vec<f64>,
 }
 
-/// What [`Lag1::merge`] collects: one `Lag1` per stretch of consecutive rows.
+/// The lag-1 co-moments of several stretches of consecutive rows, one `Lag1` each.
 #[derive(Clone, Debug, Default)]
 pub struct Lag1Set {
     parts: Vec<Lag1>,
