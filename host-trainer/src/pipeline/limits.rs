@@ -268,7 +268,40 @@ pub fn candidates(
     } else {
         &fitted.sample_corr
     };
-    let fl = finite_limits(p, m, &fitted.lag1, truth, robust, shrinkage, alpha, spec)?;
+    // The limits and the two baseline-length searches are independent simulations with their own
+    // seeds: run them side by side (the same numbers as one after the other, in about half the
+    // wall time on two cores).
+    let lag1 = if spec.independent_rows {
+        &[][..]
+    } else {
+        &fitted.lag1[..]
+    };
+    let length_sizes = effective_sizes(p, m as f64, lag1);
+    let (fl, lengths) = std::thread::scope(|scope| {
+        let lengths = scope.spawn(|| {
+            if !length_sizes.usable() {
+                return Vec::new();
+            }
+            LENGTH_FACTORS
+                .iter()
+                .map(|&within| {
+                    let rows = rows_needed(&length_sizes, alpha, within, spec.confidence)
+                        .unwrap_or(f64::INFINITY);
+                    LengthNeed {
+                        within,
+                        rows_fitted: rows,
+                        met: m as f64 >= rows,
+                    }
+                })
+                .collect::<Vec<_>>()
+        });
+        let fl = finite_limits(p, m, &fitted.lag1, truth, robust, shrinkage, alpha, spec);
+        (
+            fl,
+            lengths.join().expect("the baseline-length search panicked"),
+        )
+    });
+    let fl = fl?;
     let FiniteLimits {
         sizes,
         hotelling,
@@ -288,21 +321,6 @@ pub fn candidates(
         empirical: threshold::empirical(&fitted.holdout_d2, alpha),
         f1,
         rate_hz,
-    };
-    let lengths = if sizes.usable() {
-        LENGTH_FACTORS
-            .iter()
-            .map(|&within| {
-                let rows = rows_needed(&sizes, alpha, within, level).unwrap_or(f64::INFINITY);
-                LengthNeed {
-                    within,
-                    rows_fitted: rows,
-                    met: m as f64 >= rows,
-                }
-            })
-            .collect()
-    } else {
-        Vec::new()
     };
     let day = SECONDS_PER_DAY * rate_hz;
     let mut named = vec![];
