@@ -342,13 +342,15 @@ fn bad_inputs_are_refused_with_file_line_and_column() {
         assert!(!out.exists(), "{name}: a failed fit must write nothing");
     }
     // The same column twice in --columns.
+    // (The output goes to a folder that exists but is never written: the input error comes first.)
     let path0 = write(dir.path(), "twice.csv", &good);
+    let never = dir.path().join("never.blob");
     ellipsoid()
         .args([
             "fit",
             path0.to_str().unwrap(),
             "--out",
-            "/dev/null/x.blob",
+            never.to_str().unwrap(),
             "--quiet",
         ])
         .args(["--columns", "current_a,temp_c,current_a"])
@@ -364,13 +366,14 @@ fn bad_inputs_are_refused_with_file_line_and_column() {
             "fit",
             path.to_str().unwrap(),
             "--out",
-            "/dev/null/x.blob",
+            never.to_str().unwrap(),
             "--quiet",
         ])
         .args(["--columns", "current_a,flow_lpm"])
         .assert()
         .failure()
         .stderr(predicate::str::contains("flow_lpm"));
+    assert!(!never.exists());
     // --skip-bad-rows gets past bad rows and says how many.
     lines[7] = "2026-01-01T00:00:07Z,10.1,abc,40".into();
     lines[9] = "2026-01-01T00:00:09Z,NaN,3.0,40".into();
@@ -1086,4 +1089,19 @@ fn a_card_must_name_each_feature_once() {
             .stderr(predicate::str::contains(why));
         assert!(!o.exists());
     }
+}
+
+/// An output into a folder that does not exist is refused before any work, naming the folder.
+#[test]
+fn an_output_folder_that_does_not_exist_is_named_up_front() {
+    let dir = tempfile::tempdir().unwrap();
+    let base = write(dir.path(), "base.csv", &baseline_csv(200, 3));
+    let out = dir.path().join("no-such-folder").join("m.blob");
+    fit(&base, &out)
+        .args(["--quiet"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("no-such-folder"))
+        .stderr(predicate::str::contains("does not exist"));
+    assert!(!dir.path().join("no-such-folder").exists());
 }

@@ -96,7 +96,7 @@ pub fn run(a: &EvaluateArgs) -> Result<()> {
                 a.model.model.display(),
                 loaded.features.len(),
                 scored.rows.len(),
-                rate
+                crate::stats::threshold::hz(rate)
             ),
             features: loaded.features.clone(),
             summary: Vec::new(),

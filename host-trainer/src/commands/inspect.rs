@@ -95,7 +95,7 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
             c.threshold_method,
             c.alpha,
             c.alpha * 86_400.0 * c.rate_hz,
-            c.rate_hz
+            crate::stats::threshold::hz(c.rate_hz)
         ),
     }
     println!(

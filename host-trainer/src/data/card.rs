@@ -51,7 +51,8 @@ pub struct ModelCard {
     pub blob_len: usize,
     /// [`names_digest`] of `features` and `log_features` with `blob_crc`, as 8 hex digits.
     pub names_digest: String,
-    /// How the alarm threshold was chosen (`chi-square`, `empirical`, `f1`).
+    /// How the alarm threshold was chosen (`hotelling`, `confidence`, `chi-square`, `empirical`,
+    /// `f1`).
     pub threshold_method: String,
     /// The per-reading false-alarm probability aimed at.
     pub alpha: f64,

@@ -96,7 +96,17 @@ impl Outputs {
             .prefix(PREFIX)
             .suffix(TMP)
             .tempfile_in(&dir)
-            .with_context(|| format!("cannot create a temporary file in {}", dir.display()))?;
+            .with_context(|| {
+                if dir.is_dir() {
+                    format!("cannot create a temporary file in {}", dir.display())
+                } else {
+                    format!(
+                        "cannot write {}: the folder {} does not exist",
+                        path.display(),
+                        dir.display()
+                    )
+                }
+            })?;
         // Held while the file exists: a cleaner that can take this lock knows its writer is gone.
         tmp.as_file()
             .lock()

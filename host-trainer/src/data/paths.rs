@@ -78,6 +78,21 @@ pub fn refuse_clashes(inputs: &[Role<'_>], outputs: &[Role<'_>]) -> Result<()> {
             }
         }
     }
+    // An output into a folder that does not exist would fail only after all the work.
+    for o in outputs {
+        let dir = match o.path.parent() {
+            Some(d) if !d.as_os_str().is_empty() => d,
+            _ => Path::new("."),
+        };
+        if !dir.is_dir() {
+            bail!(
+                "{} {}: the folder {} does not exist",
+                o.what,
+                o.path.display(),
+                dir.display()
+            );
+        }
+    }
     for (k, (o, oid)) in outputs.iter().zip(&outs).enumerate() {
         for (p, pid) in outputs[..k].iter().zip(&outs) {
             if oid == pid {

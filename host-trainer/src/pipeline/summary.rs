@@ -189,7 +189,7 @@ fn threshold_section(s: &mut String, t: &Trained) {
         "Threshold on d² (target: α = {:.3e} per reading = {:.3} false readings a day at {} Hz):",
         c.alpha,
         c.alpha * SECONDS_PER_DAY * t.rate_hz,
-        t.rate_hz
+        threshold::hz(t.rate_hz)
     );
     sizes_lines(s, t);
     let level = 100.0 * pr.confidence;
@@ -245,7 +245,7 @@ fn threshold_section(s: &mut String, t: &Trained) {
                 c.alpha,
                 e.needed,
                 threshold::duration_words(e.needed as f64 / t.rate_hz),
-                t.rate_hz,
+                threshold::hz(t.rate_hz),
                 e.n
             );
         }
@@ -271,7 +271,9 @@ fn threshold_section(s: &mut String, t: &Trained) {
         s,
         "  false readings a day above it at {} Hz (before the raise-after debounce): expected {:.3} (the mean over \
          baselines like this one); at most {:.3} a day with {level:.0} % confidence for this baseline",
-        t.rate_hz, pr.expected_per_day, pr.at_most_per_day
+        threshold::hz(t.rate_hz),
+        pr.expected_per_day,
+        pr.at_most_per_day
     );
     length_lines(s, t);
 }
@@ -345,7 +347,7 @@ fn length_lines(s: &mut String, t: &Trained) {
                     pr.rows_logged(l),
                     100.0 * pr.holdout,
                     threshold::duration_words(pr.rows_logged(l) / t.rate_hz),
-                    t.rate_hz,
+                    threshold::hz(t.rate_hz),
                     if l.met { "met" } else { "not met" }
                 )
             } else {

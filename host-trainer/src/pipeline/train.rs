@@ -367,7 +367,9 @@ pub fn train(a: &TrainSpec) -> Result<Trained> {
     if a.strict_baseline {
         if let Some(short) = promise.lengths.first().filter(|l| !l.met) {
             anyhow::bail!(
-                "{}: {} rows fitted, but the false-alarm promise holds within {}× (with {:.0} % confidence) only from                  {} rows fitted, {} rows logged with the {:.0} % hold-out ({} at {} Hz); log a longer baseline,                  or drop --strict-baseline to fit anyway with a warning",
+                "{}: {} rows fitted, but the false-alarm promise holds within {}× (with {:.0} % confidence) only from \
+                 {} rows fitted, {} rows logged with the {:.0} % hold-out ({} at {} Hz); log a longer baseline, \
+                 or drop --strict-baseline to fit anyway with a warning",
                 a.baseline.display(),
                 promise.m,
                 short.within,
@@ -376,7 +378,7 @@ pub fn train(a: &TrainSpec) -> Result<Trained> {
                 promise.rows_logged(short),
                 100.0 * a.holdout,
                 limits::duration_words(promise.rows_logged(short) / a.rate_hz),
-                a.rate_hz
+                crate::stats::threshold::hz(a.rate_hz)
             );
         }
     }

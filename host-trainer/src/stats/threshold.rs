@@ -216,7 +216,7 @@ impl Candidates {
                         self.alpha,
                         e.needed,
                         time,
-                        self.rate_hz,
+                        hz(self.rate_hz),
                         e.n
                     )
                 })
@@ -230,9 +230,34 @@ impl Candidates {
     }
 }
 
+/// A reading rate for people: up to six significant digits and no trailing zeros (`1`, `25`,
+/// `0.00555556` for one reading every three minutes).
+pub fn hz(rate: f64) -> String {
+    if !rate.is_finite() || rate <= 0.0 {
+        return format!("{rate}");
+    }
+    let digits = (5 - rate.log10().floor() as i32).max(0) as usize;
+    let s = format!("{rate:.digits$}");
+    if s.contains('.') {
+        s.trim_end_matches('0').trim_end_matches('.').to_string()
+    } else {
+        s
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Rates as people write them, and the rate of one reading every three minutes.
+    #[test]
+    fn rates_print_short() {
+        assert_eq!(hz(1.0), "1");
+        assert_eq!(hz(25.0), "25");
+        assert_eq!(hz(0.5), "0.5");
+        assert_eq!(hz(1.0 / 180.0), "0.00555556");
+        assert_eq!(hz(1000.0), "1000");
+    }
 
     /// NIST/SEMATECH e-Handbook of Statistical Methods, section 1.3.6.7.4, "Critical Values of the
     /// Chi-Square Distribution" (upper-tail; copied in shared/reference-values.md). Rounded to 3 decimals.

@@ -454,7 +454,7 @@ impl fmt::Display for Evaluation {
             f,
             "{} readings ({hours:.2} h at {} Hz): {} labelled normal, {} anomalous; {} could not be scored ({} of them labelled normal)",
             self.readings,
-            self.rate_hz,
+            crate::stats::threshold::hz(self.rate_hz),
             self.normal_readings,
             self.anomalous_readings,
             self.unscored,
