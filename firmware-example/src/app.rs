@@ -74,7 +74,7 @@ where
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::fixtures::{slot_image, slots_ab};
+    use crate::fixtures::{slot_image, slots_ab, table};
     use crate::pins::ActiveLevel;
     use crate::slots::Slot;
     use crate::source::{table_header, Table, TableError};
@@ -138,16 +138,6 @@ mod tests {
         fn finish(self, _ok: bool) -> ! {
             unreachable!("the tests call `session`, which returns")
         }
-    }
-
-    fn table(rows: &[[f32; 2]]) -> Vec<u8> {
-        let mut b = table_header(2, rows.len() as u32).to_vec();
-        for r in rows {
-            for v in r {
-                b.extend_from_slice(&v.to_le_bytes());
-            }
-        }
-        b
     }
 
     #[test]

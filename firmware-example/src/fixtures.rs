@@ -3,6 +3,7 @@
 use ellipsoid_core::{blob, AlarmPolicy, ModelMeta, ModelParams, Preprocess, Thresholds};
 
 use crate::slots::Slot;
+use crate::source::table_header;
 
 /// A flash slot holding a valid 2-feature blob (identity `W`, alarm above 9, clear below 4,
 /// clear after 1), followed by erased flash (0xFF). Returns the slot's bytes and the blob's length.
@@ -43,4 +44,16 @@ pub fn slots_ab<'a>(a: &'a [u8], b: &'a [u8]) -> [Slot<'a>; 2] {
             bytes: b,
         },
     ]
+}
+
+/// A reading table (the emulator's format, `source::table_header` then the `f32` values) of
+/// 2-feature readings.
+pub fn table(rows: &[[f32; 2]]) -> Vec<u8> {
+    let mut b = table_header(2, rows.len() as u32).to_vec();
+    for r in rows {
+        for v in r {
+            b.extend_from_slice(&v.to_le_bytes());
+        }
+    }
+    b
 }

@@ -252,23 +252,13 @@ fn report_pin(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::fixtures::{slot_image, slots_ab};
+    use crate::fixtures::{slot_image, slots_ab, table};
     use crate::pins::ActiveLevel;
-    use crate::source::{table_header, Table};
+    use crate::source::Table;
     use embedded_hal_mock::eh1::digital::{Mock, State, Transaction};
 
     fn blob_bytes(sequence: u32, raise_after: u16) -> Vec<u8> {
         slot_image(sequence, raise_after).0
-    }
-
-    fn table(rows: &[[f32; 2]]) -> Vec<u8> {
-        let mut b = table_header(2, rows.len() as u32).to_vec();
-        for r in rows {
-            for v in r {
-                b.extend_from_slice(&v.to_le_bytes());
-            }
-        }
-        b
     }
 
     #[test]
