@@ -13,7 +13,8 @@
 #
 #   capi/e2e.sh [DEMO_DIR]    DEMO_DIR: an `ellipsoid demo` output (model.blob, readings.csv);
 #                             without it the script makes one.
-# Any failed check ends the script with a non-zero status. Figures go to target/e2e-capi/figures.txt.
+# Any failed check ends the script with a non-zero status. The figures go to target/e2e-capi/figures.txt
+# and into README.md's "From C" section.
 set -euo pipefail
 cd "$(dirname "$0")/.."
 
@@ -137,4 +138,15 @@ overhead=$(awk '/^cost / { for (i = 2; i <= NF; i++) if ($i ~ /^loop_overhead=/)
     "of which loop and call $overhead (SysTick, -icount shift=0)"
   cat "$W/compared.txt" "$W/reach.txt"
 } | tee "$W/figures.txt"
+
+# The figures into the README's "From C" section, between its markers (a whole new file, then
+# renamed over the old one, so an interrupted run leaves the README as it was).
+grep -q '^<!-- capi-figures:begin' README.md && grep -q '^<!-- capi-figures:end' README.md \
+  || fail "README.md has no capi-figures markers"
+awk -v figures="$W/figures.txt" '
+  /^<!-- capi-figures:begin/ { print; while ((getline l < figures) > 0) print "- " l; skip = 1; next }
+  /^<!-- capi-figures:end/ { skip = 0 }
+  !skip { print }
+' README.md >"$W/README.md.new"
+mv "$W/README.md.new" README.md
 say "passed"

@@ -171,4 +171,5 @@ $TOOL figures --elf "$ELF" --elf-m0 "$ELF_M0" --cost "$W/cost.log" --device "$W/
 if grep -q '\*\*missed\*\*' firmware-example/README.md README.md; then
   fail "a cost target was missed (see firmware-example/README.md)"
 fi
+capi/e2e.sh "$W/demo" # the C API's example firmware on the same demo (capi/e2e.sh says what it checks)
 say "e2e passed"

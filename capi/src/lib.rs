@@ -405,11 +405,11 @@ unsafe fn alarm_mut<'a>(
     }
 }
 
-/// Copy a reading of `n` floats from `x`.
+/// The reading of `n` floats at `x`, borrowed in place (no copy).
 ///
 /// # Safety
-/// `x` is null or valid for reads of `n` floats.
-unsafe fn reading(x: *const f32, n: usize) -> Result<[f32; N], ellipsoid_status> {
+/// `x` is null or valid for reads of `n` floats that nothing writes during the call.
+unsafe fn reading<'a>(x: *const f32, n: usize) -> Result<&'a [f32; N], ellipsoid_status> {
     if x.is_null() {
         return Err(ELLIPSOID_ERR_NULL);
     }
@@ -419,12 +419,10 @@ unsafe fn reading(x: *const f32, n: usize) -> Result<[f32; N], ellipsoid_status>
     if misaligned(x, align_of::<f32>()) {
         return Err(ELLIPSOID_ERR_ALIGNMENT);
     }
-    let mut r = [0.0f32; N];
-    for (i, ri) in r.iter_mut().enumerate() {
-        // SAFETY: `i < N = n`, and the caller gave `n` readable, aligned floats at `x`.
-        *ri = unsafe { ptr::read(x.add(i)) };
-    }
-    Ok(r)
+    // SAFETY: non-null and aligned (checked above); by the contract `n = N` floats at `x` are
+    // readable and not written during the call, and any bits are a valid `f32`. The borrow does
+    // not outlive the exported function that made it.
+    Ok(unsafe { &*x.cast::<[f32; N]>() })
 }
 
 fn c_step(step: &Step) -> ellipsoid_step_t {
@@ -600,7 +598,7 @@ pub unsafe extern "C" fn ellipsoid_score(
 ) -> ellipsoid_status {
     // SAFETY: the arguments are checked by the helpers, and valid by the contract.
     let (status, score) = match unsafe { model_ref(model).and_then(|m| Ok((m, reading(x, n)?))) } {
-        Ok((m, r)) => to_c_score(m.score(&r)),
+        Ok((m, r)) => to_c_score(m.score(r)),
         Err(e) => (e, failed_score(e, 0)),
     };
     // SAFETY: `out` is null or writable by the contract; `put` checks null and alignment.
@@ -635,7 +633,7 @@ pub unsafe extern "C" fn ellipsoid_explain(
         unsafe { model_ref(model).and_then(|m| Ok((m, reading(x, n)?))) }
     };
     let (status, score, values) = match checked {
-        Ok((m, r)) => match m.explain(&r) {
+        Ok((m, r)) => match m.explain(r) {
             Ok(e) => {
                 let (s, score) = to_c_score(Ok(e.score));
                 (s, score, Some(e.contributions))
