@@ -81,11 +81,14 @@ const ALARM_TAG: u32 = u32::from_le_bytes(*b"ELAM");
 
 /// What the caller's model storage holds after a successful decode.
 #[repr(C)]
-struct StoredModel {
+struct Stored<const M: usize> {
     tag: u32,
     n: u32,
-    model: Model<N>,
+    model: Model<M>,
 }
+
+/// The storage of this library's N.
+type StoredModel = Stored<N>;
 
 /// What the words of an `ellipsoid_alarm_t` hold after [`ellipsoid_alarm_init`].
 #[repr(C)]
@@ -829,5 +832,45 @@ pub extern "C" fn ellipsoid_status_name(status: i32) -> *const c_char {
 fn halt(_: &core::panic::PanicInfo) -> ! {
     loop {
         core::hint::spin_loop();
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The header's `ELLIPSOID_MODEL_BYTES(n)` holds for every N a feature can choose, not only
+    /// for the one built (which a compile-time assertion checks).
+    #[test]
+    fn the_storage_formula_holds_for_every_supported_n() {
+        macro_rules! each {
+            ($($n:literal)*) => {$(
+                assert!(
+                    size_of::<Stored<$n>>() <= model_storage_bytes($n),
+                    "N = {}: {} bytes needed, the header promises {}",
+                    $n,
+                    size_of::<Stored<$n>>(),
+                    model_storage_bytes($n)
+                );
+                assert!(align_of::<Stored<$n>>() <= ELLIPSOID_STORAGE_ALIGN);
+            )*};
+        }
+        each!(1 2 3 4 5 6 7 8 10 12 16 20 24 32);
+    }
+
+    #[test]
+    fn every_status_has_its_own_name() {
+        let codes = (0..=6).chain(16..=28).chain(48..=53);
+        let mut names: Vec<&[u8]> = codes
+            .map(|c| {
+                // SAFETY: `ellipsoid_status_name` returns a static NUL-terminated string.
+                unsafe { core::ffi::CStr::from_ptr(ellipsoid_status_name(c)) }.to_bytes()
+            })
+            .collect();
+        assert!(!names.contains(&&b"unknown"[..]));
+        let all = names.len();
+        names.sort();
+        names.dedup();
+        assert_eq!(names.len(), all, "two status codes share a name");
     }
 }
