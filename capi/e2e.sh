@@ -135,12 +135,18 @@ cat "$W/demo.log" | grep -E '^(calibrate|cost) ' | tee "$W/cost.txt"
 cost=$(awk '/^cost / { for (i = 2; i <= NF; i++) if ($i ~ /^instr_per_score=/) { sub(/.*=/, "", $i); print $i } }' "$W/cost.txt")
 overhead=$(awk '/^cost / { for (i = 2; i <= NF; i++) if ($i ~ /^loop_overhead=/) { sub(/.*=/, "", $i); print $i } }' "$W/cost.txt")
 [ -n "$cost" ] || fail "the C image reported no cost per score"
+stack_boot=$(awk -F= '/^stack boot_bytes=/ { print $2 }' "$W/demo.log")
+stack_run=$(awk -F= '/^stack run_bytes=/ { print $2 }' "$W/demo.log")
+[ -n "$stack_boot" ] && [ -n "$stack_run" ] || fail "the C image reported no stack use"
 {
   echo "C example image (arm-none-eabi-gcc -O2, library: firmware profile, N = 5): flash $flash bytes" \
     "(.text $(sec .text), .rodata $(sec .rodata), .data $(sec .data)), RAM .bss $(sec .bss) bytes," \
     "every exported function kept; not from the example's C files (the library, with its compiler" \
     "helpers): $lib_flash bytes"
   echo "exported functions, bytes: ${api_sizes%, }"
+  echo "RAM of the decoded model: ellipsoid_model_storage_t, $(( 8 * 5 * 5 + 16 * 5 + 64 )) bytes (ELLIPSOID_MODEL_BYTES(5));" \
+    "stack peak from the top (stack painting): boot and decode $stack_boot bytes, scoring the demo" \
+    "(explain, alarm machine and report included) $stack_run bytes"
   echo "cost per score through ellipsoid_score on the demo model (N = 5): $cost instructions," \
     "of which loop and call $overhead (SysTick, -icount shift=0)"
   cat "$W/compared.txt" "$W/reach.txt"

@@ -9,6 +9,7 @@
  *
  *   r 12 d2=40490fdb v=above alarm=1 fault=0 event=raised top=3
  *
+ * It reports the stack it used at boot (decode) and while scoring, from the top of the stack.
  * Then it measures the cost of a score with SysTick (one tick per 40 instructions under
  * `-icount shift=0`, calibrated here as the Rust `score-cost` image does).
  *
@@ -21,6 +22,7 @@
 #include "board.h"
 
 extern const uint8_t _model_a_start[], _model_a_len[], _readings_start[], _readings_len[];
+extern uint32_t _stack_top;
 
 /* The FPGA I/O block's LED register: bit 0 is the alarm line, bit 1 the fault line. */
 #define LEDS (*(volatile uint32_t *)0x40028000u)
@@ -72,6 +74,26 @@ static uint32_t bits(float f) {
     uint32_t u;
   } v = {f};
   return v.u;
+}
+
+/* ---- stack use: paint below the stack pointer, later find the deepest word overwritten ------ */
+
+#define PAINT 0x5EE55EE5u
+#define PAINT_WORDS 16384u /* 64 KiB below the stack pointer */
+static uint32_t *paint_low;
+
+__attribute__((noinline)) static void paint_stack(void) {
+  uint32_t *sp;
+  __asm__ volatile("mov %0, sp" : "=r"(sp));
+  paint_low = sp - PAINT_WORDS;
+  for (uint32_t *p = paint_low; p < sp - 8; p++) *p = PAINT;
+}
+
+/* Bytes from the top of the stack to the deepest word overwritten since the last paint. */
+static uint32_t stack_peak(void) {
+  uint32_t *p = paint_low;
+  while (*p == PAINT) p++;
+  return (uint32_t)((uintptr_t)&_stack_top - (uintptr_t)p);
 }
 
 /* ---- the two lines -------------------------------------------------------------------------- */
@@ -202,6 +224,7 @@ static ellipsoid_model_storage_t storage;
 static ellipsoid_alarm_t alarm;
 
 int main(void) {
+  paint_stack();
   put_str("boot c-example n=");
   put_u32((uint32_t)ellipsoid_features());
   end_line();
@@ -243,6 +266,9 @@ int main(void) {
   end_line();
   ellipsoid_alarm_init(&alarm, model);
   drive_both(&step, -1);
+  put_str("stack boot_bytes=");
+  put_u32(stack_peak());
+  end_line();
 
   /* The reading table: "ERTB", N, count (u32 LE each), then count * N floats. */
   const uint32_t *head = (const uint32_t *)_readings_start;
@@ -261,6 +287,7 @@ int main(void) {
   put_str("readings count=");
   put_u32(count);
   end_line();
+  paint_stack();
 
   uint32_t scored = 0, faults = 0;
   for (uint32_t i = 0; i < count; i++) {
@@ -320,6 +347,9 @@ int main(void) {
   put_u32(faults);
   end_line();
   print_leds();
+  put_str("stack run_bytes=");
+  put_u32(stack_peak());
+  end_line();
 
   measure_cost(model, rows, count);
   return 0;
