@@ -249,6 +249,8 @@ ellipsoid_status ellipsoid_model_info(const struct ellipsoid_model *model,
 // Score the reading `x` of `n` floats (raw sensor units; `n` must be the library's N). Returns
 // `ELLIPSOID_OK` when the reading was scored, an `ELLIPSOID_FAULT_*` code when it could not be, or
 // an argument error; `*out` (if not NULL) gets the same status and, on `ELLIPSOID_OK` only, d².
+// Here and in every call, an output pointer that is not aligned for its type is refused with
+// `ELLIPSOID_ERR_ALIGNMENT` before anything else is done.
 //
 // # Safety
 // `model` comes from `ellipsoid_decode`; `x` is valid for reads of `n` floats; `out` is NULL or

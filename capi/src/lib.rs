@@ -501,7 +501,10 @@ pub unsafe extern "C" fn ellipsoid_decode(
     if model.is_null() {
         return ELLIPSOID_ERR_NULL;
     }
-    // SAFETY: `model` is non-null; `put` checks its alignment; valid for a write by the contract.
+    if misaligned(model, align_of::<*const ellipsoid_model>()) {
+        return ELLIPSOID_ERR_ALIGNMENT;
+    }
+    // SAFETY: `model` is non-null and aligned (checked above), valid for a write by the contract.
     unsafe { put(model, ptr::null()) };
     if blob.is_null() || storage.is_null() {
         return ELLIPSOID_ERR_NULL;
@@ -588,6 +591,8 @@ pub unsafe extern "C" fn ellipsoid_model_info(
 /// Score the reading `x` of `n` floats (raw sensor units; `n` must be the library's N). Returns
 /// `ELLIPSOID_OK` when the reading was scored, an `ELLIPSOID_FAULT_*` code when it could not be, or
 /// an argument error; `*out` (if not NULL) gets the same status and, on `ELLIPSOID_OK` only, d².
+/// Here and in every call, an output pointer that is not aligned for its type is refused with
+/// `ELLIPSOID_ERR_ALIGNMENT` before anything else is done.
 ///
 /// # Safety
 /// `model` comes from `ellipsoid_decode`; `x` is valid for reads of `n` floats; `out` is NULL or
@@ -599,6 +604,9 @@ pub unsafe extern "C" fn ellipsoid_score(
     n: usize,
     out: *mut ellipsoid_score_t,
 ) -> ellipsoid_status {
+    if misaligned(out, align_of::<ellipsoid_score_t>()) {
+        return ELLIPSOID_ERR_ALIGNMENT;
+    }
     // SAFETY: the arguments are checked by the helpers, and valid by the contract.
     let (status, score) = match unsafe { model_ref(model).and_then(|m| Ok((m, reading(x, n)?))) } {
         Ok((m, r)) => to_c_score(m.score(r)),
@@ -625,6 +633,9 @@ pub unsafe extern "C" fn ellipsoid_explain(
     n_contributions: usize,
     out: *mut ellipsoid_score_t,
 ) -> ellipsoid_status {
+    if misaligned(out, align_of::<ellipsoid_score_t>()) {
+        return ELLIPSOID_ERR_ALIGNMENT;
+    }
     let checked = if contributions.is_null() {
         Err(ELLIPSOID_ERR_NULL)
     } else if n_contributions != N {
@@ -648,14 +659,11 @@ pub unsafe extern "C" fn ellipsoid_explain(
         },
         Err(e) => (e, failed_score(e, 0), None),
     };
-    let writable = !contributions.is_null()
-        && n_contributions <= N
-        && !misaligned(contributions, align_of::<f32>());
-    if writable {
-        for i in 0..n_contributions {
+    if !contributions.is_null() && !misaligned(contributions, align_of::<f32>()) {
+        for i in 0..n_contributions.min(N) {
             let v = values.as_ref().and_then(|c| c.get(i)).copied();
             // SAFETY: `i < n_contributions`, and the caller gave that many writable, aligned
-            // floats at `contributions` (checked non-null and aligned above).
+            // floats at `contributions` (checked non-null and aligned just above).
             unsafe { ptr::write(contributions.add(i), v.unwrap_or(f32::NAN)) };
         }
     }
@@ -737,6 +745,9 @@ pub unsafe extern "C" fn ellipsoid_alarm_update(
         Ok(m) => m,
         Err(e) => return e,
     };
+    if misaligned(step, align_of::<ellipsoid_step_t>()) {
+        return ELLIPSOID_ERR_ALIGNMENT;
+    }
     if score.is_null() {
         return ELLIPSOID_ERR_NULL;
     }
@@ -783,6 +794,9 @@ pub unsafe extern "C" fn ellipsoid_alarm_reset(
         Ok(m) => m,
         Err(e) => return e,
     };
+    if misaligned(step, align_of::<ellipsoid_step_t>()) {
+        return ELLIPSOID_ERR_ALIGNMENT;
+    }
     let out = c_step(&machine.reset());
     // SAFETY: `step` is null or writable by the contract; `put` checks null and alignment.
     unsafe { put(step, out) };

@@ -123,6 +123,16 @@ static void argument_checks(const unsigned char *blob, size_t blob_len) {
   check("score-wrong-n", ellipsoid_score(model, x, ELLIPSOID_N - 1, &s), ELLIPSOID_ERR_LENGTH);
   check("score-wrong-n-status", s.status, ELLIPSOID_ERR_LENGTH);
   check("score-null-model", ellipsoid_score(NULL, x, ELLIPSOID_N, &s), ELLIPSOID_ERR_NULL);
+  {
+    static uint32_t words[8];
+    check("score-misaligned-out",
+          ellipsoid_score(model, x, ELLIPSOID_N, (ellipsoid_score_t *)((char *)words + 2)),
+          ELLIPSOID_ERR_ALIGNMENT);
+    check("decode-misaligned-handle",
+          ellipsoid_decode(blob, blob_len, &spare, sizeof spare,
+                           (const ellipsoid_model **)((char *)words + 2)),
+          ELLIPSOID_ERR_ALIGNMENT);
+  }
   check("score-null-out-still-returns", ellipsoid_score(model, x, ELLIPSOID_N, NULL), ELLIPSOID_OK);
   check("explain-null-c", ellipsoid_explain(model, x, ELLIPSOID_N, NULL, ELLIPSOID_N, &s),
         ELLIPSOID_ERR_NULL);
