@@ -75,7 +75,6 @@ static void argument_checks(const unsigned char *blob, size_t blob_len) {
 
   check("features", (long)ellipsoid_features(), ELLIPSOID_N);
   check("storage-fits", ellipsoid_model_bytes() <= sizeof storage, 1);
-  check("storage-is-tight", ellipsoid_model_bytes() + 64 > sizeof storage, 1);
   /* Storage that was never decoded (zeroed, as .bss is) is refused, and the score says so. */
   check("not-decoded", ellipsoid_score(model, x, ELLIPSOID_N, &s), ELLIPSOID_ERR_NOT_DECODED);
   check("not-decoded-d2-nan", s.d2 != s.d2, 1);
