@@ -232,7 +232,7 @@ size_t ellipsoid_model_bytes(void);
 //
 // # Safety
 // `blob` is valid for reads of `blob_len` bytes, `storage` for writes of `storage_len` bytes, and
-// `model` for a write of one pointer.
+// `model` for a write of one pointer; the three do not overlap.
 ellipsoid_status ellipsoid_decode(const uint8_t *blob,
                                   size_t blob_len,
                                   void *storage,

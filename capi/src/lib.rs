@@ -489,7 +489,7 @@ pub extern "C" fn ellipsoid_model_bytes() -> usize {
 ///
 /// # Safety
 /// `blob` is valid for reads of `blob_len` bytes, `storage` for writes of `storage_len` bytes, and
-/// `model` for a write of one pointer.
+/// `model` for a write of one pointer; the three do not overlap.
 #[no_mangle]
 pub unsafe extern "C" fn ellipsoid_decode(
     blob: *const u8,
@@ -740,11 +740,11 @@ pub unsafe extern "C" fn ellipsoid_alarm_update(
     score: *const ellipsoid_score_t,
     step: *mut ellipsoid_step_t,
 ) -> ellipsoid_status {
-    // SAFETY: `alarm_mut` checks `alarm`.
-    let machine = match unsafe { alarm_mut(alarm) } {
-        Ok(m) => m,
-        Err(e) => return e,
-    };
+    // SAFETY: `alarm_mut` checks `alarm`. The borrow ends here: the alarm is checked first, so
+    // that its errors come first, and borrowed again only after the score has been read.
+    if let Err(e) = unsafe { alarm_mut(alarm) } {
+        return e;
+    }
     if misaligned(step, align_of::<ellipsoid_step_t>()) {
         return ELLIPSOID_ERR_ALIGNMENT;
     }
@@ -771,6 +771,11 @@ pub unsafe extern "C" fn ellipsoid_alarm_update(
             Some(f) => Err(f),
             None => return ELLIPSOID_ERR_ARGUMENT,
         }
+    };
+    // SAFETY: as above; no other reference into the caller's memory is alive now.
+    let machine = match unsafe { alarm_mut(alarm) } {
+        Ok(m) => m,
+        Err(e) => return e,
     };
     let out = c_step(&machine.update(&input));
     // SAFETY: `step` is null or writable by the contract; `put` checks null and alignment.
