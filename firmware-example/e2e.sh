@@ -203,6 +203,13 @@ run_m0 m0-slot-a "$ELF_M0" "$W/readings.bin" $(load "$BLOB_A" "$M0_A")
 must_pass_m0 m0-slot-a
 $TOOL compare --device "$W/m0-slot-a.log" --replay "$W/replay-a.csv" --readings "$READINGS" \
   --slot A | sed 's/^/M0, slot A valid, B empty: /' | tee -a "$W/compared-m0.txt"
+# The same blob programmed as a flash programmer would: `ellipsoid export` writes Intel HEX at the
+# micro:bit's slot B, and the emulator's loader reads the HEX file (its addresses, not ours).
+$ELLIPSOID export "$BLOB_A" --format ihex --board microbit --slot B --out "$W/model-a-slot-b.hex"
+run_m0 m0-hex-b "$ELF_M0" "$W/readings.bin" -device "loader,file=$W/model-a-slot-b.hex"
+must_pass_m0 m0-hex-b
+$TOOL compare --device "$W/m0-hex-b.log" --replay "$W/replay-a.csv" --readings "$READINGS" \
+  --slot B --unusable A | sed 's/^/M0, slot B programmed from `ellipsoid export --format ihex`: /' | tee -a "$W/compared-m0.txt"
 # shellcheck disable=SC2046
 run_m0 m0-a-flipped "$ELF_M0" "$W/readings.bin" $(load "$W/a-flipped.blob" "$M0_A") $(load "$BLOB_B" "$M0_B")
 must_pass_m0 m0-a-flipped
