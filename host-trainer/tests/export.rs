@@ -278,3 +278,45 @@ fn export_has_help_with_an_example() {
         .stdout(predicate::str::contains("Examples"))
         .stdout(predicate::str::contains("--board"));
 }
+
+#[test]
+fn inspect_reports_the_crc_as_the_identity_and_it_tells_threshold_variants_apart() {
+    let dir = tempfile::tempdir().unwrap();
+    let b = blob(dir.path());
+    let bytes = std::fs::read(&b).unwrap();
+    let crc = u32::from_le_bytes(bytes[bytes.len() - 4..].try_into().unwrap());
+    ellipsoid()
+        .args(["inspect", b.to_str().unwrap()])
+        .assert()
+        .success()
+        .stdout(predicate::str::contains(format!(
+            "identity: CRC-32 {crc:#010x}"
+        )));
+    let json = ellipsoid()
+        .args(["inspect", b.to_str().unwrap(), "--json"])
+        .output()
+        .unwrap();
+    let text = String::from_utf8_lossy(&json.stdout);
+    assert!(
+        text.contains(&format!("\"crc\": \"{crc:#010x}\"")),
+        "{text}"
+    );
+    // The same baseline and sequence with another alarm budget: another threshold, another CRC.
+    let other = dir.path().join("other.blob");
+    ellipsoid()
+        .args(["fit", dir.path().join("base.csv").to_str().unwrap()])
+        .args([
+            "--out",
+            other.to_str().unwrap(),
+            "--quiet",
+            "--sequence",
+            "7",
+        ])
+        .args(["--trained-at", "1767225600", "--alarms-per-day", "5"])
+        .assert()
+        .success();
+    let ob = std::fs::read(&other).unwrap();
+    let ocrc = u32::from_le_bytes(ob[ob.len() - 4..].try_into().unwrap());
+    assert_ne!(ob, bytes, "another alarm budget must change the blob");
+    assert_ne!(ocrc, crc);
+}
