@@ -230,6 +230,56 @@ $TOOL compare --device "$W/m0-both.log" --replay "$W/replay-b.csv" --readings "$
 run_m0 m0-none "$ELF_M0" "$W/readings.bin" $(load "$W/a-flipped.blob" "$M0_A") $(load "$W/b-torn.blob" "$M0_B")
 must_pass_m0 m0-none
 $TOOL no-model --device "$W/m0-none.log" | sed 's/^/M0, A bit-flipped, B torn: /' | tee -a "$W/compared-m0.txt"
+# Slot images as a programmer leaves them on erased flash (the blob, then 0xFF, then the
+# confirmation word: erased, or the mark), for the slot rules (src/slots.rs).
+img() { $TOOL slot-image --input "$1" --out "$W/$2" "${@:3}" >/dev/null; }
+img "$BLOB_A" a-seq-max.img --sequence 4294967295 --confirmed
+img "$BLOB_B" b-seq-0.img --sequence 0
+img "$BLOB_A" a-seq-5.img --sequence 5
+img "$BLOB_B" b-seq-5.img --sequence 5
+img "$BLOB_B" b-seq-5-confirmed.img --sequence 5 --confirmed
+img "$BLOB_A" a-seq-1.img
+# B: the second model with a unit error (feature 0's scale × 1e30): valid, but every d² overflows.
+img "$BLOB_B" b-broken.img --scale0-times 1e30
+img "$BLOB_B" b-broken-confirmed.img --scale0-times 1e30 --confirmed
+# Wrap-around: A at 4 294 967 295 (even confirmed), B at 0: B is newer (RFC 1982).
+# shellcheck disable=SC2046
+run_m0 m0-wrap "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-max.img" "$M0_A") $(load "$W/b-seq-0.img" "$M0_B")
+must_pass_m0 m0-wrap
+grep -q "^model slot=B seq=0 " "$W/m0-wrap.log" || fail "M0: sequence 0 did not follow 4294967295"
+$TOOL compare --device "$W/m0-wrap.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B | sed 's/^/M0, A at sequence 4294967295, B at 0 (wrapped): /' | tee -a "$W/compared-m0.txt"
+# Equal sequences, different models: a reported tie; slot A by the rule, or B when only B is confirmed.
+# shellcheck disable=SC2046
+run_m0 m0-tie "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-5.img" "$M0_A") $(load "$W/b-seq-5.img" "$M0_B")
+must_pass_m0 m0-tie
+grep -q "^slot B tie with A: both seq=5, different models; A used" "$W/m0-tie.log" \
+  || fail "M0: the tie of equal sequences was not reported"
+$TOOL compare --device "$W/m0-tie.log" --replay "$W/replay-a.csv" --readings "$READINGS" \
+  --slot A | sed 's/^/M0, A and B both sequence 5, neither confirmed (tie reported, A by rule): /' \
+  | tee -a "$W/compared-m0.txt"
+# shellcheck disable=SC2046
+run_m0 m0-tie-b "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-5.img" "$M0_A") $(load "$W/b-seq-5-confirmed.img" "$M0_B")
+must_pass_m0 m0-tie-b
+grep -q "^slot B tie with A: both seq=5, different models; B used" "$W/m0-tie-b.log" \
+  || fail "M0: the tie won by the confirmed slot was not reported"
+$TOOL compare --device "$W/m0-tie-b.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B | sed 's/^/M0, A and B both sequence 5, B confirmed (tie reported, B by rule): /' \
+  | tee -a "$W/compared-m0.txt"
+# Fall-back: B (newer, unconfirmed) faults on every reading; after its probation the node takes A.
+# shellcheck disable=SC2046
+run_m0 m0-fallback "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-1.img" "$M0_A") $(load "$W/b-broken.img" "$M0_B")
+must_pass_m0 m0-fallback
+$TOOL fallback --device "$W/m0-fallback.log" --replay "$W/replay-a.csv" --from B --to A --probation 60 \
+  | sed 's/^/M0, B unconfirmed and faulting, A valid: /' | tee -a "$W/compared-m0.txt"
+# The same B, confirmed: trusted, no probation, so no fall-back: it faults on every reading.
+# shellcheck disable=SC2046
+run_m0 m0-no-fallback "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-1.img" "$M0_A") $(load "$W/b-broken-confirmed.img" "$M0_B")
+must_pass_m0 m0-no-fallback
+grep -q "^fallback\|^probation" "$W/m0-no-fallback.log" && fail "M0: a confirmed model was put on probation"
+grep -q "^end scored=0 faults=14400$" "$W/m0-no-fallback.log" || fail "M0: the confirmed broken model did not fault on every reading"
+echo "M0, the same faulting B but confirmed: no probation, no fall-back, all 14400 readings faults (fault line on)" \
+  | tee -a "$W/compared-m0.txt"
 # shellcheck disable=SC2046
 run_m0 m0-pins "$ELF_M0" "$W/golden-n5.bin" $(load "$W/golden-n5.blob" "$M0_A")
 must_pass_m0 m0-pins

@@ -48,6 +48,46 @@ enum Cmd {
         #[arg(long)]
         out: PathBuf,
     },
+    /// Write a slot image as a programmer leaves it on erased flash: the blob (optionally with
+    /// another sequence number, or with feature 0's scale multiplied, resealed with a new CRC),
+    /// 0xFF up to a multiple of 4 bytes, and the confirmation word (erased, or the mark).
+    SlotImage {
+        /// A valid blob of the demo's dimension (N = 5).
+        #[arg(long)]
+        input: PathBuf,
+        /// A new sequence number.
+        #[arg(long)]
+        sequence: Option<u32>,
+        /// Multiply feature 0's scale by this (1e30: a unit error that overflows every d²).
+        #[arg(long)]
+        scale0_times: Option<f32>,
+        /// Write the confirmation mark after the blob (else the word stays erased).
+        #[arg(long)]
+        confirmed: bool,
+        /// The slot image to write.
+        #[arg(long)]
+        out: PathBuf,
+    },
+    /// Check a run that fell back: the first model faulted on every reading up to the fall-back,
+    /// which the device reported, and from the next reading on its d² bits are those of the replay
+    /// of the model it fell back to.
+    Fallback {
+        /// The device's semihosting output.
+        #[arg(long)]
+        device: PathBuf,
+        /// The replay of the model fallen back to.
+        #[arg(long)]
+        replay: PathBuf,
+        /// The slot fallen back from, and to.
+        #[arg(long)]
+        from: String,
+        /// The slot fallen back to.
+        #[arg(long)]
+        to: String,
+        /// Readings of the probation (the firmware's PROBATION_READINGS).
+        #[arg(long)]
+        probation: u32,
+    },
     /// Compare the device's report with `ellipsoid replay` of the same readings.
     Compare {
         /// The device's semihosting output.
@@ -180,6 +220,20 @@ fn main() -> Result<()> {
             unusable.as_deref(),
         ),
         Cmd::NoModel { device } => no_model(&device),
+        Cmd::SlotImage {
+            input,
+            sequence,
+            scale0_times,
+            confirmed,
+            out,
+        } => slot_image(&input, sequence, scale0_times, confirmed, &out),
+        Cmd::Fallback {
+            device,
+            replay,
+            from,
+            to,
+            probation,
+        } => fallback(&device, &replay, &from, &to, probation),
         Cmd::PinsLoad { pins, blob, table } => pins_load(&pins, &blob, &table),
         Cmd::PinsCompare { pins, device } => pins_compare(&pins, &device),
         Cmd::Reach {
@@ -308,6 +362,115 @@ fn damage(input: &Path, mode: &str, out: &Path) -> Result<()> {
     }
     write_atomic(out, &b)?;
     println!("damage: {mode} {} -> {}", input.display(), out.display());
+    Ok(())
+}
+
+fn slot_image(
+    input: &Path,
+    sequence: Option<u32>,
+    scale0_times: Option<f32>,
+    confirmed: bool,
+    out: &Path,
+) -> Result<()> {
+    use ellipsoid_core::blob;
+    use ellipsoid_firmware_example::slots::{mark_offset, CONFIRM_MARK};
+    let bytes = fs::read(input).with_context(|| format!("reading {}", input.display()))?;
+    let mut p = blob::decode::<5>(&bytes)
+        .map_err(|e| anyhow!("{}: not a valid N = 5 blob: {e}", input.display()))?;
+    if let Some(s) = sequence {
+        p.meta.sequence = s;
+    }
+    if let Some(k) = scale0_times {
+        p.preprocess.scale[0] *= k;
+    }
+    let mut buf = vec![0xFF; blob::max_len(5) + 8];
+    let len = blob::encode(&p, &mut buf)
+        .map_err(|e| anyhow!("{}: cannot re-encode: {e:?}", input.display()))?;
+    let at = mark_offset(len);
+    buf.truncate(at + 4);
+    if confirmed {
+        buf[at..].copy_from_slice(&CONFIRM_MARK.to_le_bytes());
+    }
+    write_atomic(out, &buf)?;
+    println!(
+        "slot-image: {} -> {} (sequence {}, {} bytes of blob, mark {})",
+        input.display(),
+        out.display(),
+        p.meta.sequence,
+        len,
+        if confirmed { "confirmed" } else { "erased" }
+    );
+    Ok(())
+}
+
+fn fallback(device: &Path, replay: &Path, from: &str, to: &str, probation: u32) -> Result<()> {
+    let dev = parse_device(device)?;
+    let rep = parse_replay(replay)?;
+    ensure!(
+        has_line(
+            &dev,
+            &format!("probation slot={from} readings={probation} fallback={to}")
+        ),
+        "{}: no probation of slot {from} with fall-back {to}",
+        device.display()
+    );
+    let last = probation - 1;
+    ensure!(
+        has_line(&dev, &format!("fallback from={from} at={last}: ")),
+        "{}: no fall-back from {from} after reading {last}",
+        device.display()
+    );
+    ensure!(
+        has_line(&dev, &format!("model slot={to} "))
+            && dev
+                .lines
+                .iter()
+                .any(|l| l.starts_with(&format!("model slot={to} ")) && l.ends_with(" fallback=1")),
+        "{}: no model line for slot {to} after the fall-back",
+        device.display()
+    );
+    ensure!(
+        !has_line(&dev, "probation passed"),
+        "{}: the probation passed, yet the node fell back",
+        device.display()
+    );
+    let (before, after): (Vec<&Row>, Vec<&Row>) = dev.rows.iter().partition(|r| r.index <= last);
+    ensure!(
+        before.len() == probation as usize && before.iter().all(|r| r.fault && r.d2_bits.is_none()),
+        "{}: slot {from} did not fault on each of readings 0..={last}",
+        device.display()
+    );
+    ensure!(
+        !after.is_empty(),
+        "{}: nothing scored after the fall-back",
+        device.display()
+    );
+    let mut same = 0;
+    for r in &after {
+        let Some(e) = rep.iter().find(|e| e.index == r.index) else {
+            bail!(
+                "{}: reading {} is not in {}",
+                device.display(),
+                r.index,
+                replay.display()
+            );
+        };
+        ensure!(
+            e.d2_bits == r.d2_bits,
+            "MISMATCH reading {}: d2 bits device {:?}, replay {:?}",
+            r.index,
+            r.d2_bits,
+            e.d2_bits
+        );
+        same += usize::from(r.d2_bits.is_some());
+    }
+    println!(
+        "fallback: slot {from} (unconfirmed) faulted on all {probation} readings of its probation; the \
+         node fell back to {to}, reported it, and scored readings {}..{} with d2 bit-identical to replay \
+         ({same} scored)",
+        last + 1,
+        after.last().map_or(last, |r| r.index)
+    );
     Ok(())
 }
 
