@@ -11,8 +11,10 @@
 #  6. look for panic machinery on the decode and score paths of the firmware image;
 #  7. measure the cost of a score for N = 4, 8, 16 and write the figures into the README;
 #  M0. the same on the emulated micro:bit (Cortex-M0, 16 KiB RAM, readings over semihosting): the
-#     demo bit-identical to replay, the slot cases, the pinned scores, the panic check (and that it
-#     catches a planted panic), software-float cost per score, and its figures in the READMEs.
+#     demo bit-identical to replay, the slot cases, a slot programmed from `ellipsoid export`'s
+#     Intel HEX, the slot rules (sequence wrap-around, ties, fall-back from an unconfirmed model),
+#     the pinned scores, the panic check (and that it catches a planted panic), software-float
+#     cost per score, and its figures in the READMEs.
 #
 # Any failed check ends the script with a non-zero status. Nearly all its time is building (the
 # release trainer, the host tool, three firmware images); the emulator runs take seconds.
@@ -272,6 +274,17 @@ run_m0 m0-fallback "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-1.img" "$M0_A") 
 must_pass_m0 m0-fallback
 $TOOL fallback --device "$W/m0-fallback.log" --replay "$W/replay-a.csv" --from B --to A --probation 60 \
   | sed 's/^/M0, B unconfirmed and faulting, A valid: /' | tee -a "$W/compared-m0.txt"
+# The check can fail: one d² bit changed after the fall-back must be refused.
+awk '!done && $1 == "r" && $2 >= 60 && match($0, /d2=[0-9a-f]+/) {
+  c = substr($0, RSTART + 10, 1); $0 = substr($0, 1, RSTART + 9) (c == "0" ? "1" : "0") substr($0, RSTART + 11)
+  done = 1
+} { print }' "$W/m0-fallback.log" >"$W/m0-fallback-tampered.log"
+cmp -s "$W/m0-fallback.log" "$W/m0-fallback-tampered.log" && fail "the tampered fall-back log is unchanged"
+if $TOOL fallback --device "$W/m0-fallback-tampered.log" --replay "$W/replay-a.csv" --from B --to A \
+    --probation 60 >"$W/m0-fallback-tampered.out" 2>&1; then
+  fail "the fall-back check accepted a log with a changed d² bit"
+fi
+grep -q MISMATCH "$W/m0-fallback-tampered.out" || fail "the fall-back check refused the tampered log for another reason"
 # The same B, confirmed: trusted, no probation, so no fall-back: it faults on every reading.
 # shellcheck disable=SC2046
 run_m0 m0-no-fallback "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-1.img" "$M0_A") $(load "$W/b-broken-confirmed.img" "$M0_B")
