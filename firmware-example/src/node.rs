@@ -16,9 +16,9 @@
 //! pin fault off level=low at=boot             (every change of a pin: line, logical, electrical, reading)
 //! r 12 d2=40490fdb v=above alarm=1 fault=0 event=raised top=3
 //! r 13 d2=- v=fault alarm=1 fault=1 event=fault cause=not-finite:2
-//! probation passed slot=B at=0: ...          (its first scored reading; or, after every reading
-//! fallback from=B at=59: ...                   of the probation faulted, the fall-back and a new
-//! model slot=A ... fallback=1                  model line)
+//! probation passed slot=B at=0: ...          (the first scored reading of a model on probation)
+//! fallback from=B at=59: ...                 (or: every reading of its probation faulted; then
+//! model slot=A ... fallback=1                 the slots again, and the model fallen back to)
 //! end scored=1440 faults=9
 //! ```
 //!

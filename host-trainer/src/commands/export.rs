@@ -335,7 +335,7 @@ pub fn run(a: &ExportArgs) -> Result<()> {
             }
             intel_hex(&bytes, *addr)?.into_bytes()
         }
-        (Format::Ihex, None) => unreachable!("checked above: ihex always has a placement"),
+        (Format::Ihex, None) => bail!("--format ihex needs --address or --board with --slot"),
         (Format::Raw, _) => bytes.clone(),
     };
     output::write_bytes(&a.out, &text)
