@@ -327,7 +327,9 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
         summary
     }
 
-    /// The model on probation scored reading `at`: say where its confirmation mark goes.
+    /// The model on probation scored reading `at`: say where its confirmation mark goes. Out of
+    /// line, as [`Node::fall_back`], so that the scoring loop's frame does not grow by it.
+    #[inline(never)]
     fn passed(&mut self, slots: &[Slot<'_>], at: u32, out: &mut impl Write) {
         let Some((slot, len)) = self.slot else { return };
         let _ = writeln!(
@@ -340,6 +342,9 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
     }
 
     /// The model on probation faulted on every reading up to `at`: take the best other slot.
+    /// Out of line: the slot check's frame (a decoded model among it) is then on the stack only
+    /// while it runs, not under every score of the loop.
+    #[inline(never)]
     fn fall_back(&mut self, slots: &[Slot<'_>], at: u32, out: &mut impl Write) {
         let from = self.slot.map(|(i, _)| i);
         let _ = writeln!(
