@@ -2,14 +2,19 @@
 # The firmware's end-to-end check in the emulator, and the figures of firmware-example/README.md.
 #
 #  1. fit the demo model with the trainer and write its blob (and a second model, sequence 2);
-#  2. build the firmware with the firmware profile (Cortex-M4F, and the Cortex-M0+ image for its size);
+#  2. build the firmware with the firmware profile (Cortex-M4F on mps2-an386, Cortex-M0 on microbit);
 #  3. run it in qemu-system-arm (mps2-an386) with the blob in slot A and the demo's readings loaded;
 #  4. check that the device's d² is bit-identical to `ellipsoid replay`, and its alarm timeline,
 #     pin changes and final LED levels identical;
 #  5. run it with slot A corrupted and a valid model in B (B must be used), with a torn A and a newer
 #     B, and with both slots corrupt (fault line on, nothing scored);
 #  6. look for panic machinery on the decode and score paths of the firmware image;
-#  7. measure the cost of a score for N = 4, 8, 16 and write the figures into the README.
+#  7. measure the cost of a score for N = 4, 8, 16 and write the figures into the README;
+#  M0. the same on the emulated micro:bit (Cortex-M0, 16 KiB RAM, readings over semihosting): the
+#     demo bit-identical to replay, the slot cases, a slot programmed from `ellipsoid export`'s
+#     Intel HEX, the slot rules (sequence wrap-around, ties, fall-back from an unconfirmed model),
+#     the pinned scores, the panic check (and that it catches a planted panic), software-float
+#     cost per score, and its figures in the READMEs.
 #
 # Any failed check ends the script with a non-zero status. Nearly all its time is building (the
 # release trainer, the host tool, three firmware images); the emulator runs take seconds.
@@ -59,12 +64,13 @@ replay "$BLOB_A" "$READINGS" "$W/replay-a.csv"
 replay "$BLOB_B" "$READINGS" "$W/replay-b.csv"
 
 say "2. the firmware, release"
-FW="cargo build -q --profile firmware -p ellipsoid-firmware-example --features mps2-an386"
-$FW --target thumbv7em-none-eabihf
-$FW --target thumbv6m-none-eabi --bin ellipsoid-node
+FW="cargo build -q --profile firmware -p ellipsoid-firmware-example"
+$FW --features mps2-an386 --target thumbv7em-none-eabihf
+$FW --no-default-features --features microbit --target thumbv6m-none-eabi
 ELF=target/thumbv7em-none-eabihf/firmware/ellipsoid-node
 COST_ELF=target/thumbv7em-none-eabihf/firmware/score-cost
 ELF_M0=target/thumbv6m-none-eabi/firmware/ellipsoid-node
+COST_ELF_M0=target/thumbv6m-none-eabi/firmware/score-cost
 arm-none-eabi-size "$ELF" "$ELF_M0"
 
 sym() { arm-none-eabi-nm "$ELF" | awk -v s="$1" '$3 == s { print "0x" $1 }'; }
@@ -168,6 +174,160 @@ $TOOL figures --elf "$ELF" --elf-m0 "$ELF_M0" --cost "$W/cost.log" --device "$W/
 # The top README reports the same figures, from the same data.
 $TOOL figures --elf "$ELF" --elf-m0 "$ELF_M0" --cost "$W/cost.log" --device "$W/slot-a.log" \
   --compared "$W/compared.txt" --reach "$W/reach.txt" --readme README.md
+# --- Cortex-M0: the emulated micro:bit (nRF51822, 16 KiB RAM; board file src/board/microbit.rs) --
+# The same checks on the M0 image. Its flash cannot hold the demo's reading table, so the image
+# reads it from a host file over semihosting, named by the command line's first argument.
+say "M0. the micro:bit image: slots, readings over semihosting"
+sym_m0() { arm-none-eabi-nm "$ELF_M0" | awk -v s="$1" '$3 == s { print "0x" $1 }'; }
+M0_A=$(sym_m0 _model_a_start)
+M0_B=$(sym_m0 _model_b_start)
+[ -n "$M0_A" ] && [ -n "$M0_B" ] || fail "slot symbols missing from $ELF_M0"
+echo "slot A at $M0_A, slot B at $M0_B"
+# run_m0 NAME IMAGE READINGS [loader args...]: like run, on the micro:bit, READINGS the table file
+# ('-' for none); the exit status is left in $W/NAME.status for the caller to judge.
+run_m0() {
+  local name=$1 image=$2 readings=$3 status=0
+  shift 3
+  timeout 120 qemu-system-arm -machine microbit -nographic \
+    -semihosting-config "enable=on,target=native,arg=ellipsoid-node,arg=$readings" \
+    -icount shift=0 -kernel "$image" "$@" >"$W/$name.log" 2>"$W/$name.err" || status=$?
+  echo "$status" >"$W/$name.status"
+}
+must_pass_m0() {
+  if [ "$(cat "$W/$1.status")" != 0 ]; then
+    tail -n 20 "$W/$1.log" "$W/$1.err" >&2 || true
+    fail "the micro:bit run '$1' did not exit cleanly"
+  fi
+}
+: >"$W/compared-m0.txt"
+# shellcheck disable=SC2046
+run_m0 m0-slot-a "$ELF_M0" "$W/readings.bin" $(load "$BLOB_A" "$M0_A")
+must_pass_m0 m0-slot-a
+$TOOL compare --device "$W/m0-slot-a.log" --replay "$W/replay-a.csv" --readings "$READINGS" \
+  --slot A | sed 's/^/M0, slot A valid, B empty: /' | tee -a "$W/compared-m0.txt"
+# The same blob programmed as a flash programmer would: `ellipsoid export` writes Intel HEX at the
+# micro:bit's slot B, and the emulator's loader reads the HEX file (its addresses, not ours).
+$ELLIPSOID export "$BLOB_A" --format ihex --board microbit --slot B --out "$W/model-a-slot-b.hex"
+run_m0 m0-hex-b "$ELF_M0" "$W/readings.bin" -device "loader,file=$W/model-a-slot-b.hex"
+must_pass_m0 m0-hex-b
+$TOOL compare --device "$W/m0-hex-b.log" --replay "$W/replay-a.csv" --readings "$READINGS" \
+  --slot B --unusable A | sed 's/^/M0, slot B programmed from `ellipsoid export --format ihex`: /' | tee -a "$W/compared-m0.txt"
+# shellcheck disable=SC2046
+run_m0 m0-a-flipped "$ELF_M0" "$W/readings.bin" $(load "$W/a-flipped.blob" "$M0_A") $(load "$BLOB_B" "$M0_B")
+must_pass_m0 m0-a-flipped
+$TOOL compare --device "$W/m0-a-flipped.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B --unusable A | sed 's/^/M0, slot A with one bit flipped, B valid: /' | tee -a "$W/compared-m0.txt"
+grep -q "slot A unusable: CRC mismatch" "$W/m0-a-flipped.log" || fail "M0: slot A's CRC failure not reported"
+# shellcheck disable=SC2046
+run_m0 m0-a-torn "$ELF_M0" "$W/readings.bin" $(load "$W/a-torn.blob" "$M0_A") $(load "$BLOB_B" "$M0_B")
+must_pass_m0 m0-a-torn
+$TOOL compare --device "$W/m0-a-torn.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B --unusable A | sed 's/^/M0, slot A torn, B valid: /' | tee -a "$W/compared-m0.txt"
+# shellcheck disable=SC2046
+run_m0 m0-both "$ELF_M0" "$W/readings.bin" $(load "$BLOB_A" "$M0_A") $(load "$BLOB_B" "$M0_B")
+must_pass_m0 m0-both
+$TOOL compare --device "$W/m0-both.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B | sed 's/^/M0, A (sequence 1) and B (sequence 2) both valid: /' | tee -a "$W/compared-m0.txt"
+# shellcheck disable=SC2046
+run_m0 m0-none "$ELF_M0" "$W/readings.bin" $(load "$W/a-flipped.blob" "$M0_A") $(load "$W/b-torn.blob" "$M0_B")
+must_pass_m0 m0-none
+$TOOL no-model --device "$W/m0-none.log" | sed 's/^/M0, A bit-flipped, B torn: /' | tee -a "$W/compared-m0.txt"
+# Slot images as a programmer leaves them on erased flash (the blob, then 0xFF, then the
+# confirmation word: erased, or the mark), for the slot rules (src/slots.rs).
+img() { $TOOL slot-image --input "$1" --out "$W/$2" "${@:3}" >/dev/null; }
+img "$BLOB_A" a-seq-max.img --sequence 4294967295 --confirmed
+img "$BLOB_B" b-seq-0.img --sequence 0
+img "$BLOB_A" a-seq-5.img --sequence 5
+img "$BLOB_B" b-seq-5.img --sequence 5
+img "$BLOB_B" b-seq-5-confirmed.img --sequence 5 --confirmed
+img "$BLOB_A" a-seq-1.img
+# B: the second model with a unit error (feature 0's scale × 1e30): valid, but every d² overflows.
+img "$BLOB_B" b-broken.img --scale0-times 1e30
+img "$BLOB_B" b-broken-confirmed.img --scale0-times 1e30 --confirmed
+# Wrap-around: A at 4 294 967 295 (even confirmed), B at 0: B is newer (RFC 1982).
+# shellcheck disable=SC2046
+run_m0 m0-wrap "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-max.img" "$M0_A") $(load "$W/b-seq-0.img" "$M0_B")
+must_pass_m0 m0-wrap
+grep -q "^model slot=B seq=0 " "$W/m0-wrap.log" || fail "M0: sequence 0 did not follow 4294967295"
+$TOOL compare --device "$W/m0-wrap.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B | sed 's/^/M0, A at sequence 4294967295, B at 0 (wrapped): /' | tee -a "$W/compared-m0.txt"
+# Equal sequences, different models: a reported tie; slot A by the rule, or B when only B is confirmed.
+# shellcheck disable=SC2046
+run_m0 m0-tie "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-5.img" "$M0_A") $(load "$W/b-seq-5.img" "$M0_B")
+must_pass_m0 m0-tie
+grep -q "^slot B tie with A: both seq=5, different models; A used" "$W/m0-tie.log" \
+  || fail "M0: the tie of equal sequences was not reported"
+$TOOL compare --device "$W/m0-tie.log" --replay "$W/replay-a.csv" --readings "$READINGS" \
+  --slot A | sed 's/^/M0, A and B both sequence 5, neither confirmed (tie reported, A by rule): /' \
+  | tee -a "$W/compared-m0.txt"
+# shellcheck disable=SC2046
+run_m0 m0-tie-b "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-5.img" "$M0_A") $(load "$W/b-seq-5-confirmed.img" "$M0_B")
+must_pass_m0 m0-tie-b
+grep -q "^slot B tie with A: both seq=5, different models; B used" "$W/m0-tie-b.log" \
+  || fail "M0: the tie won by the confirmed slot was not reported"
+$TOOL compare --device "$W/m0-tie-b.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B | sed 's/^/M0, A and B both sequence 5, B confirmed (tie reported, B by rule): /' \
+  | tee -a "$W/compared-m0.txt"
+# Fall-back: B (newer, unconfirmed) faults on every reading; after its probation the node takes A.
+# shellcheck disable=SC2046
+run_m0 m0-fallback "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-1.img" "$M0_A") $(load "$W/b-broken.img" "$M0_B")
+must_pass_m0 m0-fallback
+$TOOL fallback --device "$W/m0-fallback.log" --replay "$W/replay-a.csv" --from B --to A --probation 60 \
+  | sed 's/^/M0, B unconfirmed and faulting, A valid: /' | tee -a "$W/compared-m0.txt"
+# The check can fail: one d² bit changed after the fall-back must be refused.
+awk '!done && $1 == "r" && $2 >= 60 && match($0, /d2=[0-9a-f]+/) {
+  c = substr($0, RSTART + 10, 1); $0 = substr($0, 1, RSTART + 9) (c == "0" ? "1" : "0") substr($0, RSTART + 11)
+  done = 1
+} { print }' "$W/m0-fallback.log" >"$W/m0-fallback-tampered.log"
+cmp -s "$W/m0-fallback.log" "$W/m0-fallback-tampered.log" && fail "the tampered fall-back log is unchanged"
+if $TOOL fallback --device "$W/m0-fallback-tampered.log" --replay "$W/replay-a.csv" --from B --to A \
+    --probation 60 >"$W/m0-fallback-tampered.out" 2>&1; then
+  fail "the fall-back check accepted a log with a changed d² bit"
+fi
+grep -q MISMATCH "$W/m0-fallback-tampered.out" || fail "the fall-back check refused the tampered log for another reason"
+# The same B, confirmed: trusted, no probation, so no fall-back: it faults on every reading.
+# shellcheck disable=SC2046
+run_m0 m0-no-fallback "$ELF_M0" "$W/readings.bin" $(load "$W/a-seq-1.img" "$M0_A") $(load "$W/b-broken-confirmed.img" "$M0_B")
+must_pass_m0 m0-no-fallback
+grep -q "^fallback\|^probation" "$W/m0-no-fallback.log" && fail "M0: a confirmed model was put on probation"
+grep -q "^end scored=0 faults=14400$" "$W/m0-no-fallback.log" || fail "M0: the confirmed broken model did not fault on every reading"
+echo "M0, the same faulting B but confirmed: no probation, no fall-back, all 14400 readings faults (fault line on)" \
+  | tee -a "$W/compared-m0.txt"
+# shellcheck disable=SC2046
+run_m0 m0-pins "$ELF_M0" "$W/golden-n5.bin" $(load "$W/golden-n5.blob" "$M0_A")
+must_pass_m0 m0-pins
+$TOOL pins-compare --pins "$PINS" --device "$W/m0-pins.log" | sed 's/^/M0: /' | tee -a "$W/compared-m0.txt"
+# A reading file the host cannot open: reported, fault line on, nothing scored, a failed run.
+# shellcheck disable=SC2046
+run_m0 m0-no-file "$ELF_M0" "$W/no-such-readings.bin" $(load "$BLOB_A" "$M0_A")
+[ "$(cat "$W/m0-no-file.status")" != 0 ] || fail "M0: a missing reading file ended the run as a success"
+grep -q "^readings unusable: $W/no-such-readings.bin: the host cannot open it" "$W/m0-no-file.log" \
+  || fail "M0: the missing reading file was not reported"
+grep -q "^pin fault on" "$W/m0-no-file.log" || fail "M0: the fault line stayed off without readings"
+grep -q "^r " "$W/m0-no-file.log" && fail "M0: readings were scored without a reading file"
+echo "M0, reading file missing: reported, fault line on, nothing scored, run failed" | tee -a "$W/compared-m0.txt"
+
+say "M0. panic machinery on the decode and score paths of the M0 image"
+$TOOL reach --elf "$ELF_M0" --roots slots::load,node::score,node::explain | tee "$W/reach-m0.txt"
+# The padding after `__aeabi_dmul` is skipped, not the function: a call planted at its last
+# instruction (just before the padding) must be found.
+if $TOOL reach --elf "$ELF_M0" --roots slots::load,node::score,node::explain \
+    --plant-panic-in __aeabi_dmul >"$W/reach-m0-planted.out" 2>&1; then
+  fail "reach missed a panic call planted at the end of __aeabi_dmul in the M0 image"
+fi
+grep -q "panic machinery reachable" "$W/reach-m0-planted.out" || fail "reach refused the planted image for another reason"
+echo "reach (M0): a panic call planted at the last instruction of __aeabi_dmul, before its padding, is found" \
+  | tee -a "$W/reach-m0.txt"
+
+say "M0. cost per score in f32 (software float)"
+run_m0 m0-cost "$COST_ELF_M0" -
+must_pass_m0 m0-cost
+cat "$W/m0-cost.log"
+for readme in firmware-example/README.md README.md; do
+  $TOOL figures-m0 --elf "$ELF_M0" --cost "$W/m0-cost.log" --cost-m4 "$W/cost.log" \
+    --device "$W/m0-slot-a.log" --compared "$W/compared-m0.txt" --reach "$W/reach-m0.txt" --readme "$readme"
+done
+# --- end of Cortex-M0 ---------------------------------------------------------------------------
 if grep -q '\*\*missed\*\*' firmware-example/README.md README.md; then
   fail "a cost target was missed (see firmware-example/README.md)"
 fi

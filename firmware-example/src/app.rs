@@ -46,14 +46,15 @@ where
     F: OutputPin,
 {
     let _ = writeln!(board.console(), "boot ellipsoid-node n={N}");
-    let mut node = Node::<_, _, N>::boot(&board.model_slots(), alarm, fault, board.console());
+    let slots = board.model_slots();
+    let mut node = Node::<_, _, N>::boot(&slots, alarm, fault, board.console());
     let ok = match board.readings() {
         Ok(mut source) => {
             if let Some(count) = source.total() {
                 let _ = writeln!(board.console(), "readings count={count}");
             }
             board.start_measuring();
-            node.run(&mut source, board.console());
+            node.run_with_fallback(&slots, &mut source, board.console());
             if let Some(peak) = board.stack_peak() {
                 let _ = writeln!(board.console(), "stack peak_bytes={peak}");
             }
@@ -157,11 +158,16 @@ mod tests {
         );
         assert!(ok);
         let lines: Vec<&str> = bench.out.lines().collect();
+        let crc = crate::fixtures::image_crc(1, 1);
+        let slot_line =
+            format!("slot A valid seq=1 id=0x00000007 crc={crc:#010x} mark=unconfirmed");
+        let model_line =
+            format!("model slot=A seq=1 id=0x00000007 crc={crc:#010x} mark=unconfirmed");
         let expected = [
             "boot ellipsoid-node n=2",
-            "slot A valid seq=1 id=0x00000007",
+            &slot_line,
             "slot B unusable: empty",
-            "model slot=A seq=1 id=0x00000007",
+            &model_line,
             "pin fault off level=low at=boot",
             "pin alarm off level=low at=boot",
             "readings count=2",

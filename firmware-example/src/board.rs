@@ -26,6 +26,15 @@ pub mod mps2_an386;
 /// The board this image is built for.
 #[cfg(all(feature = "mps2-an386", target_os = "none"))]
 pub use mps2_an386 as selected;
+#[cfg(all(feature = "microbit", target_os = "none"))]
+pub mod microbit;
+/// The board this image is built for.
+#[cfg(all(feature = "microbit", target_os = "none"))]
+pub use microbit as selected;
+
+// What the emulated boards share: the semihosting console, exit, panic handler and host files.
+#[cfg(all(feature = "semihosting", target_os = "none"))]
+pub mod semihosting;
 
 /// A board as taken at reset: the two output lines, and the rest of the board.
 #[derive(Debug)]

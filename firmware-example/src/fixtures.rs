@@ -57,3 +57,10 @@ pub fn table(rows: &[[f32; 2]]) -> Vec<u8> {
     }
     b
 }
+
+/// The CRC-32 of [`slot_image`]'s blob, computed over its bytes by the core's checksum (not read
+/// from the blob), as the console reports it.
+pub fn image_crc(sequence: u32, raise_after: u16) -> u32 {
+    let (bytes, len) = slot_image(sequence, raise_after);
+    blob::checksum(&bytes[..len - blob::CRC_LEN])
+}

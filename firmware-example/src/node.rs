@@ -9,13 +9,21 @@
 //! One line per fact, words separated by single spaces, so that a host tool can check it:
 //!
 //! ```text
-//! slot A valid seq=3 id=0x00000abc            (or: slot B unusable: <reason>)
-//! model slot=A seq=3 id=0x00000abc            (or: model none)
+//! slot A valid seq=3 id=0x00000abc crc=0x1c291ca3 mark=confirmed   (or: slot B unusable: <reason>)
+//! slot B tie with A: ...; A used (rule: ...)  (only when two valid slots cannot be ordered)
+//! model slot=A seq=3 id=0x00000abc crc=0x1c291ca3 mark=confirmed   (or: model none)
+//! probation slot=B readings=60 fallback=A     (an unconfirmed model with another valid slot)
 //! pin fault off level=low at=boot             (every change of a pin: line, logical, electrical, reading)
 //! r 12 d2=40490fdb v=above alarm=1 fault=0 event=raised top=3
 //! r 13 d2=- v=fault alarm=1 fault=1 event=fault cause=not-finite:2
+//! probation passed slot=B at=0: ...          (the first scored reading of a model on probation)
+//! fallback from=B at=59: ...                 (or: every reading of its probation faulted; then
+//! model slot=A ... fallback=1                 the slots again, and the model fallen back to)
 //! end scored=1440 faults=9
 //! ```
+//!
+//! `crc` is the blob's CRC-32, the model's identity: two models that differ in any byte differ
+//! there, where `id` (the trainer's model id) may not. See [`crate::slots`] for the slot rules.
 //!
 //! `d2` is the bit pattern of the f32 d² as 8 hex digits, `alarm` and `fault` the logical levels
 //! after the reading, `event` the state machine's events joined with `+` (`-` for none), and `top`
@@ -29,7 +37,7 @@ use ellipsoid_core::{
 use embedded_hal::digital::OutputPin;
 
 use crate::pins::{Line, PinChange};
-use crate::slots::{self, Slot, SlotReport};
+use crate::slots::{self, Chosen, Probation, Slot, SlotReport, TieKind, Watch};
 use crate::source::ReadingSource;
 
 /// Score one reading. Kept out of line so that the image check for panic machinery (see the
@@ -64,6 +72,54 @@ pub struct Node<A, F, const N: usize> {
     machine: AlarmMachine,
     alarm: Line<A>,
     fault: Line<F>,
+    /// The slot in use, its blob's length, and the probation of its model.
+    slot: Option<(usize, usize)>,
+    probation: Probation,
+    /// Readings scored by models before the current one (after a fall-back), so that reading
+    /// indices run on.
+    index_base: u32,
+}
+
+/// Write what [`slots::choose`] found in one slot.
+fn report_slot(out: &mut impl Write, slots: &[Slot<'_>], slot: &Slot<'_>, report: &SlotReport) {
+    let _ = match report {
+        SlotReport::Valid {
+            sequence,
+            model_id,
+            crc,
+            mark,
+        } => writeln!(
+            out,
+            "slot {} valid seq={sequence} id={model_id:#010x} crc={crc:#010x} mark={mark}",
+            slot.name
+        ),
+        SlotReport::Unusable(e) => writeln!(out, "slot {} unusable: {e}", slot.name),
+        SlotReport::Tie {
+            other,
+            sequences: (mine, theirs),
+            why,
+            won,
+        } => {
+            let other = slots.get(*other).map_or("?", |s| s.name);
+            let _ = match why {
+                TieKind::EqualSequence => write!(
+                    out,
+                    "slot {} tie with {other}: both seq={mine}, different models",
+                    slot.name
+                ),
+                TieKind::Undefined => write!(
+                    out,
+                    "slot {} tie with {other}: seq={mine} and seq={theirs} are 2^31 apart, order undefined (RFC 1982)",
+                    slot.name
+                ),
+            };
+            writeln!(
+                out,
+                "; {} used (rule: a confirmed model first, then the first slot)",
+                if *won { slot.name } else { other }
+            )
+        }
+    };
 }
 
 struct Cause(ReadingFault);
@@ -83,42 +139,68 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
     /// Check the slots, take the newest valid model, and drive both lines to their first levels:
     /// alarm off, and fault on if no slot holds a valid model. Reports every slot and pin.
     pub fn boot(slots: &[Slot<'_>], alarm: Line<A>, fault: Line<F>, out: &mut impl Write) -> Self {
-        let chosen = slots::choose::<N>(slots, |slot, report| {
-            let _ = match report {
-                SlotReport::Valid { sequence, model_id } => writeln!(
-                    out,
-                    "slot {} valid seq={sequence} id={model_id:#010x}",
-                    slot.name
-                ),
-                SlotReport::Unusable(e) => writeln!(out, "slot {} unusable: {e}", slot.name),
-            };
-        });
-        let (model, machine) = match chosen {
-            Some(c) => {
-                let meta = c.model.meta();
-                let name = slots.get(c.slot).map_or("?", |s| s.name);
-                let _ = writeln!(
-                    out,
-                    "model slot={name} seq={} id={:#010x}",
-                    meta.sequence, meta.model_id
-                );
-                let machine = AlarmMachine::new(c.model.thresholds(), c.model.policy());
-                (Some(c.model), machine)
-            }
-            None => {
-                let _ = writeln!(out, "model none");
-                (None, AlarmMachine::without_model())
-            }
-        };
+        let chosen = slots::choose::<N>(slots, None, |slot, r| report_slot(out, slots, slot, r));
         let mut node = Self {
-            model,
-            machine,
+            model: None,
+            machine: AlarmMachine::without_model(),
             alarm,
             fault,
+            slot: None,
+            probation: Probation::none(),
+            index_base: 0,
         };
+        node.take(chosen, slots, false, out);
         let (a, f) = (node.machine.alarm_active(), node.machine.fault().is_some());
         node.drive(a, f, None, out);
         node
+    }
+
+    /// Put the chosen model (or none) in use, and report it.
+    fn take(
+        &mut self,
+        chosen: Option<Chosen<N>>,
+        slots: &[Slot<'_>],
+        fell_back: bool,
+        out: &mut impl Write,
+    ) {
+        let name = |i: usize| slots.get(i).map_or("?", |s| s.name);
+        let Some(c) = chosen else {
+            let _ = writeln!(out, "model none");
+            self.model = None;
+            self.machine = AlarmMachine::without_model();
+            self.slot = None;
+            self.probation = Probation::none();
+            return;
+        };
+        let meta = c.model.meta();
+        let _ = writeln!(
+            out,
+            "model slot={} seq={} id={:#010x} crc={:#010x} mark={}{}",
+            name(c.slot),
+            meta.sequence,
+            meta.model_id,
+            c.crc,
+            c.mark,
+            if fell_back { " fallback=1" } else { "" }
+        );
+        // A model taken in a fall-back is not put on probation again: the node does not bounce.
+        self.probation = if fell_back {
+            Probation::none()
+        } else {
+            Probation::for_chosen(c.mark, c.fallback)
+        };
+        if let (true, Some(f)) = (self.probation.active(), c.fallback) {
+            let _ = writeln!(
+                out,
+                "probation slot={} readings={} fallback={}",
+                name(c.slot),
+                slots::PROBATION_READINGS,
+                name(f)
+            );
+        }
+        self.machine = AlarmMachine::new(c.model.thresholds(), c.model.policy());
+        self.model = Some(c.model);
+        self.slot = Some((c.slot, c.blob_len));
     }
 
     /// The model in use, if any.
@@ -150,7 +232,7 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
     /// (and scores nothing) when there is no valid model.
     pub fn step(&mut self, x: &[f32; N], out: &mut impl Write) -> Option<Step> {
         let model = self.model.as_ref()?;
-        let index = self.machine.next_index();
+        let index = self.index_base + self.machine.next_index();
         let scored = score(model, x);
         let step = self.machine.update(&scored);
         let raised = step.events.iter().any(|e| e.kind == EventKind::Raised);
@@ -199,18 +281,42 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
     }
 
     /// Score every reading of `source` until it ends. Without a model nothing is read or scored:
-    /// the fault line stays on.
+    /// the fault line stays on. A model on probation has nothing to fall back to here: use
+    /// [`Node::run_with_fallback`] with the slots it was booted from.
     pub fn run<S: ReadingSource<N>>(&mut self, source: &mut S, out: &mut impl Write) -> Summary {
+        self.run_with_fallback(&[], source, out)
+    }
+
+    /// [`Node::run`], falling back to another of `slots` (those given to [`Node::boot`]) when an
+    /// unconfirmed model faults on every reading of its probation.
+    pub fn run_with_fallback<S: ReadingSource<N>>(
+        &mut self,
+        slots: &[Slot<'_>],
+        source: &mut S,
+        out: &mut impl Write,
+    ) -> Summary {
         let mut summary = Summary::default();
         if self.model.is_none() {
             let _ = writeln!(out, "not scoring: no valid model");
             return summary;
         }
         while let Some(x) = source.next_reading() {
-            match self.step(&x, out) {
-                Some(s) if s.fault => summary.faults += 1,
-                Some(_) => summary.scored += 1,
+            let at = self.index_base + self.machine.next_index();
+            let faulted = match self.step(&x, out) {
+                Some(s) if s.fault => {
+                    summary.faults += 1;
+                    true
+                }
+                Some(_) => {
+                    summary.scored += 1;
+                    false
+                }
                 None => break,
+            };
+            match self.probation.observe(faulted) {
+                Watch::Keep => {}
+                Watch::Passed => self.passed(slots, at, out),
+                Watch::FallBack => self.fall_back(slots, at, out),
             }
         }
         let _ = writeln!(
@@ -219,6 +325,46 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
             summary.scored, summary.faults
         );
         summary
+    }
+
+    /// The model on probation scored reading `at`: say where its confirmation mark goes. Out of
+    /// line, as [`Node::fall_back`], so that the scoring loop's frame does not grow by it.
+    #[inline(never)]
+    fn passed(&mut self, slots: &[Slot<'_>], at: u32, out: &mut impl Write) {
+        let Some((slot, len)) = self.slot else { return };
+        let _ = writeln!(
+            out,
+            "probation passed slot={} at={at}: to confirm it, program the word {:#010x} at offset {} of the slot (this firmware does not write flash)",
+            slots.get(slot).map_or("?", |s| s.name),
+            slots::CONFIRM_MARK,
+            slots::mark_offset(len)
+        );
+    }
+
+    /// The model on probation faulted on every reading up to `at`: take the best other slot.
+    /// Out of line: the slot check's frame (a decoded model among it) is then on the stack only
+    /// while it runs, not under every score of the loop.
+    #[inline(never)]
+    fn fall_back(&mut self, slots: &[Slot<'_>], at: u32, out: &mut impl Write) {
+        let from = self.slot.map(|(i, _)| i);
+        let _ = writeln!(
+            out,
+            "fallback from={} at={at}: unconfirmed, it faulted on all {} readings of its probation",
+            from.and_then(|i| slots.get(i)).map_or("?", |s| s.name),
+            slots::PROBATION_READINGS
+        );
+        let chosen = slots::choose::<N>(slots, from, |slot, r| report_slot(out, slots, slot, r));
+        if chosen.is_none() {
+            let _ = writeln!(
+                out,
+                "fallback impossible: no other valid slot; keeping the model"
+            );
+            return;
+        }
+        self.index_base = at + 1;
+        self.take(chosen, slots, true, out);
+        let (a, f) = (self.machine.alarm_active(), self.machine.fault().is_some());
+        self.drive(a, f, Some(at), out);
     }
 
     /// Give the pins back.
@@ -298,9 +444,14 @@ mod tests {
             }
         );
         let lines: Vec<&str> = out.lines().collect();
+        let crc = crate::fixtures::image_crc(1, 1);
+        let slot_line =
+            format!("slot A valid seq=1 id=0x00000007 crc={crc:#010x} mark=unconfirmed");
+        let model_line =
+            format!("model slot=A seq=1 id=0x00000007 crc={crc:#010x} mark=unconfirmed");
         let expected = [
-            "slot A valid seq=1 id=0x00000007",
-            "model slot=A seq=1 id=0x00000007",
+            &slot_line,
+            &model_line,
             "pin fault off level=low at=boot",
             "pin alarm off level=high at=boot",
             "r 0 d2=00000000 v=below alarm=0 fault=0 event=-",
@@ -396,5 +547,136 @@ mod tests {
         assert!(out.contains("event=raised top=1\n"), "{out}");
         alarm.done();
         fault.done();
+    }
+
+    /// A slot image of a 2-feature model whose feature 0 is log-transformed: it faults (log
+    /// domain) on every reading whose feature 0 is not positive, where `slot_image`'s model scores.
+    fn log_image(sequence: u32) -> Vec<u8> {
+        use ellipsoid_core::{blob, AlarmPolicy, ModelMeta, ModelParams, Preprocess, Thresholds};
+        let params = ModelParams::<2> {
+            meta: ModelMeta {
+                model_id: 8,
+                trained_at: 0,
+                sequence,
+            },
+            preprocess: Preprocess {
+                log_mask: 1,
+                ..Preprocess::identity()
+            },
+            mean: [0.0; 2],
+            w: [[1.0, 0.0], [0.0, 1.0]],
+            thresholds: Thresholds {
+                alarm: 9.0,
+                clear: 4.0,
+            },
+            policy: AlarmPolicy::default(),
+        };
+        let mut buf = vec![0xFF; 512];
+        blob::encode(&params, &mut buf).unwrap();
+        buf
+    }
+
+    #[test]
+    fn an_unconfirmed_model_that_faults_on_every_reading_falls_back_and_says_so() {
+        let n = slots::PROBATION_READINGS as usize;
+        let a = blob_bytes(1, 1);
+        let b = log_image(2);
+        let slots = slots_ab(&a, &b);
+        let alarm = Mock::new(&[Transaction::set(State::Low)]);
+        let fault = Mock::new(&[
+            Transaction::set(State::Low),  // boot
+            Transaction::set(State::High), // B faults on reading 0
+            Transaction::set(State::Low),  // fallback to A after reading n - 1
+        ]);
+        let mut out = String::new();
+        let mut node = Node::<_, _, 2>::boot(
+            &slots,
+            Line::new(alarm.clone(), ActiveLevel::High),
+            Line::new(fault.clone(), ActiveLevel::High),
+            &mut out,
+        );
+        assert_eq!(node.model().map(|m| m.meta().sequence), Some(2));
+        // Feature 0 negative: B cannot take its log; A scores d² = 1 + 0.
+        let rows = table(&vec![[-1.0, 0.0]; n + 2]);
+        let mut src = Table::<2>::new(&rows).unwrap();
+        let summary = node.run_with_fallback(&slots, &mut src, &mut out);
+        assert_eq!(
+            summary,
+            Summary {
+                scored: 2,
+                faults: n as u32
+            },
+            "{out}"
+        );
+        assert_eq!(node.model().map(|m| m.meta().sequence), Some(1));
+        assert!(
+            out.contains(&format!("probation slot=B readings={n} fallback=A\n")),
+            "{out}"
+        );
+        let last = n - 1;
+        assert!(
+            out.contains(&format!(
+                "r {last} d2=- v=fault alarm=0 fault=1 event=- cause=log-domain:0\n\
+                 fallback from=B at={last}: unconfirmed, it faulted on all {n} readings of its probation\n\
+                 slot A valid seq=1"
+            )),
+            "{out}"
+        );
+        assert!(
+            out.contains(" fallback=1\npin fault off level=low at="),
+            "{out}"
+        );
+        // The reading indices run on, and A (no probation) scores them.
+        assert!(
+            out.contains(&format!("\nr {n} d2=3f800000 v=below alarm=0 fault=0")),
+            "{out}"
+        );
+        assert!(!out.contains("probation passed"), "{out}");
+        alarm.clone().done();
+        fault.clone().done();
+    }
+
+    #[test]
+    fn an_unconfirmed_model_that_scores_passes_its_probation_and_a_confirmed_one_has_none() {
+        let a = blob_bytes(1, 1);
+        let (mut b, len) = slot_image(2, 1);
+        let at = slots::mark_offset(len);
+        for marked in [false, true] {
+            if marked {
+                b[at..at + 4].copy_from_slice(&slots::CONFIRM_MARK.to_le_bytes());
+            }
+            let slots = slots_ab(&a, &b);
+            let mut alarm = Mock::new(&[Transaction::set(State::Low)]);
+            let mut fault = Mock::new(&[Transaction::set(State::Low)]);
+            let mut out = String::new();
+            let mut node = Node::<_, _, 2>::boot(
+                &slots,
+                Line::new(alarm.clone(), ActiveLevel::High),
+                Line::new(fault.clone(), ActiveLevel::High),
+                &mut out,
+            );
+            let rows = table(&[[1.0, 0.0], [0.0, 1.0]]);
+            let mut src = Table::<2>::new(&rows).unwrap();
+            let _ = node.run_with_fallback(&slots, &mut src, &mut out);
+            assert!(out.contains("model slot=B seq=2"), "{out}");
+            let passed = format!(
+                "probation passed slot=B at=0: to confirm it, program the word 0x464e4f43 at offset {at} of the slot"
+            );
+            if marked {
+                assert!(out.contains("mark=confirmed\n"), "{out}");
+                assert!(!out.contains("probation"), "{out}");
+            } else {
+                assert!(
+                    out.contains("mark=unconfirmed\nprobation slot=B readings="),
+                    "{out}"
+                );
+                assert!(out.contains(&passed), "{out}");
+                assert_eq!(out.matches("probation passed").count(), 1, "{out}");
+            }
+            alarm.done();
+            fault.done();
+        }
+        // "CONF" in flash, little-endian.
+        assert_eq!(slots::CONFIRM_MARK.to_le_bytes(), *b"CONF");
     }
 }

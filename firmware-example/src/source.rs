@@ -60,6 +60,8 @@ pub enum TableError {
         /// N of this firmware.
         expected: u32,
     },
+    /// The reading file's length could not be read.
+    Unreadable,
     /// The stated count of readings does not fit in the bytes given.
     Length {
         /// Readings the header states.
@@ -73,6 +75,7 @@ impl fmt::Display for TableError {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
             TableError::Magic => f.write_str("no reading table (bad magic)"),
+            TableError::Unreadable => f.write_str("the reading file's length cannot be read"),
             TableError::Dimension { found, expected } => {
                 write!(f, "reading table has {found} features, expected {expected}")
             }
@@ -95,33 +98,45 @@ pub struct Table<'a, const N: usize> {
     count: u32,
 }
 
+/// Check a table's header (the first [`TABLE_HEADER_LEN`] bytes or more of `bytes`) for a node
+/// of `N` features whose readings can occupy `body_len` bytes after the header, and return the
+/// count of readings it states.
+pub fn check_header<const N: usize>(bytes: &[u8], body_len: usize) -> Result<u32, TableError> {
+    let word = |at: usize| {
+        bytes
+            .get(at..at + 4)
+            .and_then(|b| <[u8; 4]>::try_from(b).ok())
+            .ok_or(TableError::Magic)
+    };
+    if word(0)? != TABLE_MAGIC {
+        return Err(TableError::Magic);
+    }
+    let n = u32::from_le_bytes(word(4)?);
+    let count = u32::from_le_bytes(word(8)?);
+    if usize::try_from(n) != Ok(N) {
+        return Err(TableError::Dimension {
+            found: n,
+            expected: N as u32,
+        });
+    }
+    let fits = (count as usize)
+        .checked_mul(4 * N)
+        .is_some_and(|needed| needed <= body_len);
+    if !fits {
+        return Err(TableError::Length {
+            count,
+            capacity: body_len,
+        });
+    }
+    Ok(count)
+}
+
 impl<'a, const N: usize> Table<'a, N> {
     /// Check the header of `bytes` (which may be longer than the table).
     pub fn new(bytes: &'a [u8]) -> Result<Self, TableError> {
-        let word = |at: usize| {
-            bytes
-                .get(at..at + 4)
-                .and_then(|b| <[u8; 4]>::try_from(b).ok())
-                .ok_or(TableError::Magic)
-        };
-        if word(0)? != TABLE_MAGIC {
-            return Err(TableError::Magic);
-        }
-        let n = u32::from_le_bytes(word(4)?);
-        let count = u32::from_le_bytes(word(8)?);
-        if usize::try_from(n) != Ok(N) {
-            return Err(TableError::Dimension {
-                found: n,
-                expected: N as u32,
-            });
-        }
         let body = bytes.get(TABLE_HEADER_LEN..).unwrap_or(&[]);
-        let len_err = TableError::Length {
-            count,
-            capacity: body.len(),
-        };
-        let needed = (count as usize).checked_mul(4 * N).ok_or(len_err)?;
-        let body = body.get(..needed).ok_or(len_err)?;
+        let count = check_header::<N>(bytes, body.len())?;
+        let body = body.get(..count as usize * 4 * N).unwrap_or(&[]);
         Ok(Self {
             rows: body.chunks_exact(4 * N),
             count,
@@ -142,6 +157,114 @@ impl<const N: usize> ReadingSource<N> for Table<'_, N> {
             *xi = <[u8; 4]>::try_from(b).map_or(f32::NAN, f32::from_le_bytes);
         }
         Some(x)
+    }
+
+    fn total(&self) -> Option<u32> {
+        Some(self.count)
+    }
+}
+
+/// A file of bytes read from its start to its end, a block at a time: a host file over
+/// semihosting, a file on an SD card. What [`Chunked`] needs of it.
+pub trait ByteFile {
+    /// The file's length in bytes, or `None` if it cannot be told.
+    fn length(&mut self) -> Option<usize>;
+
+    /// Read the next bytes into `buf`, as many as fit and remain: the number read (0 at the end),
+    /// or `None` if the read failed.
+    fn read(&mut self, buf: &mut [u8]) -> Option<usize>;
+}
+
+/// Readings per block that [`Chunked`] reads from its file at once.
+pub const CHUNK_READINGS: usize = 8;
+
+/// Readings from a reading table in a [`ByteFile`], in the format of [`Table`], read
+/// [`CHUNK_READINGS`] readings at a time into a fixed buffer of `32 · N` bytes: for a table that
+/// does not fit in the part's memory (on the emulated micro:bit, the demo's 288 KB table is read
+/// over semihosting). No heap.
+///
+/// The header is checked against the file's length when it is opened, so a short file is refused
+/// before anything is scored. If a read fails (or the file ends early) later, every reading it
+/// could not deliver is given as NaN, which the core scores as a reading fault, never as normal.
+pub struct Chunked<F, const N: usize> {
+    file: F,
+    buf: [[[u8; 4]; N]; CHUNK_READINGS],
+    /// Readings in `buf`, and the next of them to give.
+    filled: usize,
+    next: usize,
+    /// Readings the header states, and how many of them are still to give.
+    count: u32,
+    left: u32,
+    /// A read failed: the rest of the readings are faults.
+    broken: bool,
+}
+
+impl<F: ByteFile, const N: usize> Chunked<F, N> {
+    /// Read and check the table's header at the start of `file`.
+    pub fn open(mut file: F) -> Result<Self, TableError> {
+        let mut header = [0u8; TABLE_HEADER_LEN];
+        let mut got = 0;
+        while got < header.len() {
+            match file.read(header.get_mut(got..).unwrap_or(&mut [])) {
+                Some(0) | None => break,
+                Some(k) => got += k,
+            }
+        }
+        let header = header.get(..got).unwrap_or(&[]);
+        let length = file.length().ok_or(TableError::Unreadable)?;
+        let count = check_header::<N>(header, length.saturating_sub(TABLE_HEADER_LEN))?;
+        Ok(Self {
+            file,
+            buf: [[[0; 4]; N]; CHUNK_READINGS],
+            filled: 0,
+            next: 0,
+            count,
+            left: count,
+            broken: false,
+        })
+    }
+
+    /// Readings the table states.
+    pub const fn count(&self) -> u32 {
+        self.count
+    }
+
+    /// Read the next block of whole readings into the buffer; `false` if none could be read.
+    fn refill(&mut self) -> bool {
+        let rows = (self.left as usize).min(CHUNK_READINGS);
+        let want = rows * 4 * N;
+        let bytes = self.buf.as_flattened_mut().as_flattened_mut();
+        let Some(bytes) = bytes.get_mut(..want) else {
+            return false;
+        };
+        let mut got = 0;
+        while got < want {
+            match self.file.read(bytes.get_mut(got..).unwrap_or(&mut [])) {
+                Some(0) | None => break,
+                Some(k) => got += k,
+            }
+        }
+        self.filled = got / (4 * N);
+        self.next = 0;
+        self.filled > 0
+    }
+}
+
+impl<F: ByteFile, const N: usize> ReadingSource<N> for Chunked<F, N> {
+    fn next_reading(&mut self) -> Option<[f32; N]> {
+        if self.left == 0 {
+            return None;
+        }
+        if self.next == self.filled && (self.broken || !self.refill()) {
+            // The file could not give this reading: a fault, never a normal score.
+            self.broken = true;
+            self.left -= 1;
+            return Some([f32::NAN; N]);
+        }
+        self.left -= 1;
+        let row = self.buf.get(self.next)?;
+        self.next += 1;
+        Some(row.map(f32::from_le_bytes))
     }
 
     fn total(&self) -> Option<u32> {
@@ -197,5 +320,121 @@ mod tests {
             Table::<2>::new(&b),
             Err(TableError::Length { .. })
         ));
+    }
+
+    /// A file in memory that gives at most `step` bytes a read, and fails every read after
+    /// `fail_after` bytes.
+    struct Mem {
+        bytes: Vec<u8>,
+        at: usize,
+        step: usize,
+        fail_after: usize,
+    }
+
+    impl ByteFile for Mem {
+        fn length(&mut self) -> Option<usize> {
+            Some(self.bytes.len())
+        }
+
+        fn read(&mut self, buf: &mut [u8]) -> Option<usize> {
+            if self.at >= self.fail_after {
+                return None;
+            }
+            let k = buf.len().min(self.step).min(self.bytes.len() - self.at);
+            buf[..k].copy_from_slice(&self.bytes[self.at..self.at + k]);
+            self.at += k;
+            Some(k)
+        }
+    }
+
+    fn rows_table(n_rows: usize) -> (Vec<u8>, Vec<[f32; 3]>) {
+        let rows: Vec<[f32; 3]> = (0..n_rows)
+            .map(|i| {
+                [
+                    i as f32,
+                    -(i as f32) * 0.5,
+                    if i == 5 { f32::NAN } else { 1.0 },
+                ]
+            })
+            .collect();
+        let mut bytes = table_header(3, n_rows as u32).to_vec();
+        for r in &rows {
+            for v in r {
+                bytes.extend_from_slice(&v.to_le_bytes());
+            }
+        }
+        (bytes, rows)
+    }
+
+    fn same(a: &[f32; 3], b: &[f32; 3]) -> bool {
+        a.iter().zip(b).all(|(x, y)| x.to_bits() == y.to_bits())
+    }
+
+    #[test]
+    fn chunked_gives_every_reading_across_blocks_and_short_reads() {
+        // 21 readings: two full blocks of 8 and a last one of 5; reads of 7 bytes split rows.
+        let (bytes, rows) = rows_table(2 * CHUNK_READINGS + 5);
+        for step in [7, 1000] {
+            let file = Mem {
+                bytes: bytes.clone(),
+                at: 0,
+                step,
+                fail_after: usize::MAX,
+            };
+            let mut c = Chunked::<_, 3>::open(file).unwrap();
+            assert_eq!(c.total(), Some(rows.len() as u32));
+            for (i, r) in rows.iter().enumerate() {
+                let got = c.next_reading().unwrap();
+                assert!(same(&got, r), "reading {i}, step {step}: {got:?} != {r:?}");
+            }
+            assert_eq!(c.next_reading(), None);
+        }
+    }
+
+    #[test]
+    fn chunked_refuses_a_short_file_and_turns_a_failed_read_into_faults() {
+        let (bytes, rows) = rows_table(20);
+        // The header states 20 readings but the file holds 19 and a half.
+        let short = Mem {
+            bytes: bytes[..bytes.len() - 6].to_vec(),
+            at: 0,
+            step: 64,
+            fail_after: usize::MAX,
+        };
+        assert_eq!(
+            Chunked::<_, 3>::open(short).err(),
+            Some(TableError::Length {
+                count: 20,
+                capacity: 19 * 12 + 6
+            })
+        );
+        let other_n = Mem {
+            bytes: bytes.clone(),
+            at: 0,
+            step: 64,
+            fail_after: usize::MAX,
+        };
+        assert!(matches!(
+            Chunked::<_, 2>::open(other_n).err(),
+            Some(TableError::Dimension { found: 3, .. })
+        ));
+        // Reads fail after the header and 10 readings: the first block of 8 is whole, the second
+        // gives 2 readings, the remaining 10 are NaN (faults) and the count still ends the source.
+        let failing = Mem {
+            bytes,
+            at: 0,
+            step: 1000,
+            fail_after: TABLE_HEADER_LEN + 10 * 12,
+        };
+        let mut c = Chunked::<_, 3>::open(Mem { step: 4, ..failing }).unwrap();
+        for (i, r) in rows.iter().enumerate() {
+            let got = c.next_reading().unwrap();
+            if i < 10 {
+                assert!(same(&got, r), "reading {i}");
+            } else {
+                assert!(got.iter().all(|v| v.is_nan()), "reading {i}: {got:?}");
+            }
+        }
+        assert_eq!(c.next_reading(), None);
     }
 }

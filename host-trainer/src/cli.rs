@@ -5,7 +5,7 @@ use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
 
-use crate::commands::{demo, evaluate, fit, inspect, replay};
+use crate::commands::{demo, evaluate, export, fit, inspect, replay};
 
 /// Train, threshold, check and explain multivariate Gaussian anomaly models for sensor nodes.
 ///
@@ -38,6 +38,11 @@ enum Command {
         after_help = "Example:\n  ellipsoid evaluate --model pump.blob --input faults.csv --label-column label --report eval.html"
     )]
     Evaluate(evaluate::EvaluateArgs),
+    /// Write a blob as a C array, as Intel HEX at a slot's address, or as raw bytes.
+    #[command(
+        after_help = "Examples:\n  ellipsoid export pump.blob --format ihex --board microbit --slot A --out pump-a.hex\n  ellipsoid export pump.blob --format c --name pump_model --out pump_model.h"
+    )]
+    Export(export::ExportArgs),
     /// Generate the booster-pump scenario and run the whole job on it, end to end.
     #[command(after_help = "Example:\n  ellipsoid demo --out demo-out")]
     Demo(demo::DemoArgs),
@@ -72,6 +77,7 @@ pub fn main() -> ExitCode {
         Command::Replay(a) => replay::run(a),
         Command::Evaluate(a) => evaluate::run(a),
         Command::Demo(a) => demo::run(a),
+        Command::Export(a) => export::run(a),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,

@@ -1,5 +1,5 @@
-//! `score-cost`: instructions per score on the Cortex-M4F for N = 4, 8 and 16, and the stack a
-//! score uses. Run under `qemu-system-arm ... -icount shift=0`, where every instruction advances
+//! `score-cost`: instructions per score on the board's core (the Cortex-M4F of `mps2-an386`, the
+//! Cortex-M0 of `microbit`) for N = 4, 8 and 16, and the stack a score uses. Run under `qemu-system-arm ... -icount shift=0`, where every instruction advances
 //! the virtual clock by the same amount, so SysTick counts instructions (the calibration below
 //! measures how many per tick).
 //!
@@ -16,7 +16,7 @@ mod image {
 
     use cortex_m_rt::entry;
     use ellipsoid_core::{AlarmPolicy, Model, ModelMeta, ModelParams, Preprocess, Thresholds};
-    use ellipsoid_firmware_example::board::mps2_an386::{self, Console, Mps2An386};
+    use ellipsoid_firmware_example::board::selected::{self, Console};
     use ellipsoid_firmware_example::measure::{paint_stack, spin, stack_depth, stack_peak, Ticks};
     use ellipsoid_firmware_example::node;
 
@@ -119,10 +119,7 @@ mod image {
     #[entry]
     fn main() -> ! {
         // Only the console and the tick counter: this image drives no line.
-        let Mps2An386 {
-            console: mut out,
-            ticks,
-        } = mps2_an386::take().board;
+        let (mut out, ticks) = selected::measuring();
         let t0 = ticks.now();
         spin(SPIN);
         let t1 = ticks.now();
@@ -136,7 +133,7 @@ mod image {
         let ok = measure::<4>(&ticks, per_tick, &mut out)
             & measure::<8>(&ticks, per_tick, &mut out)
             & measure::<16>(&ticks, per_tick, &mut out);
-        mps2_an386::exit(ok)
+        selected::exit(ok)
     }
 }
 
@@ -146,7 +143,7 @@ mod image {
 fn main() {
     eprintln!(
         "score-cost: this is a board image; build it with \
-         --target thumbv7em-none-eabihf (see firmware-example/README.md)"
+         --target thumbv7em-none-eabihf or thumbv6m-none-eabi (see firmware-example/README.md)"
     );
     std::process::exit(2);
 }

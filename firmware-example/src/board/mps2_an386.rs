@@ -7,8 +7,8 @@
 //!   alarm and fault, both active-high; the register is read back at the end of a run;
 //! * where the model slots and the reading table are (linker symbols from the memory map); the
 //!   readings are a [`Table`] that the emulator's loader puts in memory;
-//! * the console: ARM semihosting to the host's standard output, a line at a time;
-//! * the end of a run: semihosting exit, which ends the emulator with a status;
+//! * the console and the end of a run: semihosting ([`super::semihosting`], shared with the
+//!   other emulated board);
 //! * its measurements: the stack painter of [`crate::measure`] around the scoring loop, and the
 //!   SysTick counter for the `score-cost` image.
 //!
@@ -16,10 +16,9 @@
 //! board").
 
 use core::convert::Infallible;
-use core::fmt::{self, Write};
 use core::ptr::{addr_of, read_volatile, write_volatile};
 
-use cortex_m_semihosting::{debug, hio};
+use cortex_m_semihosting::hio;
 use embedded_hal::digital::{ErrorType, OutputPin};
 
 use crate::board::{Board, Parts};
@@ -27,6 +26,8 @@ use crate::measure::{self, Ticks};
 use crate::pins::{ActiveLevel, Line};
 use crate::slots::Slot;
 use crate::source::{Table, TableError};
+
+pub use crate::board::semihosting::{exit, Console};
 
 /// The FPGA I/O block's LED0 register: two LEDs, bits 0 and 1.
 const FPGAIO_LED0: usize = 0x4002_8000;
@@ -141,6 +142,13 @@ pub fn take() -> Parts<Mps2An386, Led, Led> {
     }
 }
 
+/// Only the console and the tick counter, for an image that drives no line (`score-cost`).
+#[inline(always)]
+pub fn measuring() -> (Console, Ticks) {
+    let b = take().board;
+    (b.console, b.ticks)
+}
+
 impl<const N: usize> Board<N> for Mps2An386 {
     type Console = Console;
     type Source = Table<'static, N>;
@@ -173,69 +181,4 @@ impl<const N: usize> Board<N> for Mps2An386 {
     fn finish(self, ok: bool) -> ! {
         exit(ok)
     }
-}
-
-/// The console: semihosting standard output, written a line at a time.
-pub struct Console {
-    stream: Option<hio::HostStream>,
-    line: [u8; 160],
-    len: usize,
-}
-
-impl Console {
-    /// Open the host's standard output.
-    pub fn new() -> Self {
-        Self {
-            stream: hio::hstdout().ok(),
-            line: [0; 160],
-            len: 0,
-        }
-    }
-
-    fn flush(&mut self) {
-        if let (Some(s), Some(bytes)) = (self.stream.as_mut(), self.line.get(..self.len)) {
-            let _ = s.write_all(bytes);
-        }
-        self.len = 0;
-    }
-}
-
-impl Default for Console {
-    fn default() -> Self {
-        Self::new()
-    }
-}
-
-impl fmt::Write for Console {
-    fn write_str(&mut self, s: &str) -> fmt::Result {
-        for &b in s.as_bytes() {
-            if let Some(slot) = self.line.get_mut(self.len) {
-                *slot = b;
-                self.len += 1;
-            }
-            if b == b'\n' || self.len == self.line.len() {
-                self.flush();
-            }
-        }
-        Ok(())
-    }
-}
-
-/// End the run: the emulator exits with status 0 (`ok`) or 1.
-pub fn exit(ok: bool) -> ! {
-    debug::exit(if ok {
-        debug::EXIT_SUCCESS
-    } else {
-        debug::EXIT_FAILURE
-    });
-    loop {
-        cortex_m::asm::wfi();
-    }
-}
-
-#[panic_handler]
-fn on_panic(info: &core::panic::PanicInfo<'_>) -> ! {
-    let mut out = Console::new();
-    let _ = writeln!(out, "panic: {info}");
-    exit(false)
 }

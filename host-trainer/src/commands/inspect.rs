@@ -40,6 +40,14 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
     let cov = p.covariance().unwrap_or_else(|| vec![f64::NAN; n * n]);
     let mean = p.raw_mean();
     let logs: Vec<bool> = (0..n).map(|i| (p.log_mask >> i) & 1 == 1).collect();
+    // The CRC-32 in the blob's last four bytes: the model's identity, as the device's console
+    // reports it (`crc=`). Unlike `model_id`, it differs for any two models that differ at all.
+    let crc = bytes
+        .len()
+        .checked_sub(4)
+        .and_then(|at| bytes.get(at..))
+        .and_then(|b| <[u8; 4]>::try_from(b).ok())
+        .map_or(0, u32::from_le_bytes);
     if as_json {
         let v = json!({
             "file": path.display().to_string(),
@@ -49,6 +57,7 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
             "features": names,
             "dimension": n,
             "model_id": p.meta.model_id,
+            "crc": format!("{crc:#010x}"),
             "trained_at": p.meta.trained_at,
             "sequence": p.meta.sequence,
             "log_transformed": logs,
@@ -77,6 +86,9 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
         "  {} bytes; decoded, the model takes {} bytes of RAM (size_of Model<{n}>)",
         bytes.len(),
         model.ram_bytes()
+    );
+    println!(
+        "  identity: CRC-32 {crc:#010x} (the device reports it as crc=; it changes with any byte)"
     );
     println!(
         "  model id {:#010x}, sequence {}, trained at {} ({} s since 1970)",

@@ -4,6 +4,7 @@
 pub mod common;
 pub mod demo;
 pub mod evaluate;
+pub mod export;
 pub mod fit;
 pub mod inspect;
 pub mod replay;

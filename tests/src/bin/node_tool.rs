@@ -48,6 +48,46 @@ enum Cmd {
         #[arg(long)]
         out: PathBuf,
     },
+    /// Write a slot image as a programmer leaves it on erased flash: the blob (optionally with
+    /// another sequence number, or with feature 0's scale multiplied, resealed with a new CRC),
+    /// 0xFF up to a multiple of 4 bytes, and the confirmation word (erased, or the mark).
+    SlotImage {
+        /// A valid blob of the demo's dimension (N = 5).
+        #[arg(long)]
+        input: PathBuf,
+        /// A new sequence number.
+        #[arg(long)]
+        sequence: Option<u32>,
+        /// Multiply feature 0's scale by this (1e30: a unit error that overflows every d²).
+        #[arg(long)]
+        scale0_times: Option<f32>,
+        /// Write the confirmation mark after the blob (else the word stays erased).
+        #[arg(long)]
+        confirmed: bool,
+        /// The slot image to write.
+        #[arg(long)]
+        out: PathBuf,
+    },
+    /// Check a run that fell back: the first model faulted on every reading up to the fall-back,
+    /// which the device reported, and from the next reading on its d² bits are those of the replay
+    /// of the model it fell back to.
+    Fallback {
+        /// The device's semihosting output.
+        #[arg(long)]
+        device: PathBuf,
+        /// The replay of the model fallen back to.
+        #[arg(long)]
+        replay: PathBuf,
+        /// The slot fallen back from, and to.
+        #[arg(long)]
+        from: String,
+        /// The slot fallen back to.
+        #[arg(long)]
+        to: String,
+        /// Readings of the probation (the firmware's PROBATION_READINGS).
+        #[arg(long)]
+        probation: u32,
+    },
     /// Compare the device's report with `ellipsoid replay` of the same readings.
     Compare {
         /// The device's semihosting output.
@@ -83,6 +123,11 @@ enum Cmd {
         /// Roots: functions whose demangled name ends with one of these.
         #[arg(long, value_delimiter = ',')]
         roots: Vec<String>,
+        /// A self-test: plant a call to `core::panicking::panic` after the last instruction of
+        /// the first function whose name ends with this (inside its size, before any padding), in
+        /// the disassembly only. The check must then fail.
+        #[arg(long)]
+        plant_panic_in: Option<String>,
     },
     /// Write the blob and the reading table of a pinned-scores file (tests/golden/*.pins).
     PinsLoad {
@@ -129,6 +174,30 @@ enum Cmd {
         #[arg(long)]
         readme: PathBuf,
     },
+    /// Write the Cortex-M0 (micro:bit) figures of the README from measured data.
+    FiguresM0 {
+        /// The node image for the micro:bit.
+        #[arg(long)]
+        elf: PathBuf,
+        /// Output of the micro:bit `score-cost` image in the emulator.
+        #[arg(long)]
+        cost: PathBuf,
+        /// Output of the Cortex-M4F `score-cost` image, for the ratio.
+        #[arg(long)]
+        cost_m4: PathBuf,
+        /// The micro:bit's output of the end-to-end run with the demo in slot A.
+        #[arg(long)]
+        device: PathBuf,
+        /// What the M0 checks printed.
+        #[arg(long)]
+        compared: PathBuf,
+        /// What `reach` printed for the M0 image.
+        #[arg(long)]
+        reach: PathBuf,
+        /// The README to update between its M0 figure markers.
+        #[arg(long)]
+        readme: PathBuf,
+    },
 }
 
 fn main() -> Result<()> {
@@ -151,9 +220,27 @@ fn main() -> Result<()> {
             unusable.as_deref(),
         ),
         Cmd::NoModel { device } => no_model(&device),
+        Cmd::SlotImage {
+            input,
+            sequence,
+            scale0_times,
+            confirmed,
+            out,
+        } => slot_image(&input, sequence, scale0_times, confirmed, &out),
+        Cmd::Fallback {
+            device,
+            replay,
+            from,
+            to,
+            probation,
+        } => fallback(&device, &replay, &from, &to, probation),
         Cmd::PinsLoad { pins, blob, table } => pins_load(&pins, &blob, &table),
         Cmd::PinsCompare { pins, device } => pins_compare(&pins, &device),
-        Cmd::Reach { elf, roots } => reach(&elf, &roots),
+        Cmd::Reach {
+            elf,
+            roots,
+            plant_panic_in,
+        } => reach(&elf, &roots, plant_panic_in.as_deref()),
         Cmd::Figures {
             elf,
             elf_m0,
@@ -163,6 +250,23 @@ fn main() -> Result<()> {
             reach,
             readme,
         } => figures(&elf, &elf_m0, &cost, &device, &compared, &reach, &readme),
+        Cmd::FiguresM0 {
+            elf,
+            cost,
+            cost_m4,
+            device,
+            compared,
+            reach,
+            readme,
+        } => figures_m0(&M0Inputs {
+            elf: &elf,
+            cost: &cost,
+            cost_m4: &cost_m4,
+            device: &device,
+            compared: &compared,
+            reach: &reach,
+            readme: &readme,
+        }),
     }
 }
 
@@ -258,6 +362,115 @@ fn damage(input: &Path, mode: &str, out: &Path) -> Result<()> {
     }
     write_atomic(out, &b)?;
     println!("damage: {mode} {} -> {}", input.display(), out.display());
+    Ok(())
+}
+
+fn slot_image(
+    input: &Path,
+    sequence: Option<u32>,
+    scale0_times: Option<f32>,
+    confirmed: bool,
+    out: &Path,
+) -> Result<()> {
+    use ellipsoid_core::blob;
+    use ellipsoid_firmware_example::slots::{mark_offset, CONFIRM_MARK};
+    let bytes = fs::read(input).with_context(|| format!("reading {}", input.display()))?;
+    let mut p = blob::decode::<5>(&bytes)
+        .map_err(|e| anyhow!("{}: not a valid N = 5 blob: {e}", input.display()))?;
+    if let Some(s) = sequence {
+        p.meta.sequence = s;
+    }
+    if let Some(k) = scale0_times {
+        p.preprocess.scale[0] *= k;
+    }
+    let mut buf = vec![0xFF; blob::max_len(5) + 8];
+    let len = blob::encode(&p, &mut buf)
+        .map_err(|e| anyhow!("{}: cannot re-encode: {e:?}", input.display()))?;
+    let at = mark_offset(len);
+    buf.truncate(at + 4);
+    if confirmed {
+        buf[at..].copy_from_slice(&CONFIRM_MARK.to_le_bytes());
+    }
+    write_atomic(out, &buf)?;
+    println!(
+        "slot-image: {} -> {} (sequence {}, {} bytes of blob, mark {})",
+        input.display(),
+        out.display(),
+        p.meta.sequence,
+        len,
+        if confirmed { "confirmed" } else { "erased" }
+    );
+    Ok(())
+}
+
+fn fallback(device: &Path, replay: &Path, from: &str, to: &str, probation: u32) -> Result<()> {
+    let dev = parse_device(device)?;
+    let rep = parse_replay(replay)?;
+    ensure!(
+        has_line(
+            &dev,
+            &format!("probation slot={from} readings={probation} fallback={to}")
+        ),
+        "{}: no probation of slot {from} with fall-back {to}",
+        device.display()
+    );
+    let last = probation - 1;
+    ensure!(
+        has_line(&dev, &format!("fallback from={from} at={last}: ")),
+        "{}: no fall-back from {from} after reading {last}",
+        device.display()
+    );
+    ensure!(
+        has_line(&dev, &format!("model slot={to} "))
+            && dev
+                .lines
+                .iter()
+                .any(|l| l.starts_with(&format!("model slot={to} ")) && l.ends_with(" fallback=1")),
+        "{}: no model line for slot {to} after the fall-back",
+        device.display()
+    );
+    ensure!(
+        !has_line(&dev, "probation passed"),
+        "{}: the probation passed, yet the node fell back",
+        device.display()
+    );
+    let (before, after): (Vec<&Row>, Vec<&Row>) = dev.rows.iter().partition(|r| r.index <= last);
+    ensure!(
+        before.len() == probation as usize && before.iter().all(|r| r.fault && r.d2_bits.is_none()),
+        "{}: slot {from} did not fault on each of readings 0..={last}",
+        device.display()
+    );
+    ensure!(
+        !after.is_empty(),
+        "{}: nothing scored after the fall-back",
+        device.display()
+    );
+    let mut same = 0;
+    for r in &after {
+        let Some(e) = rep.iter().find(|e| e.index == r.index) else {
+            bail!(
+                "{}: reading {} is not in {}",
+                device.display(),
+                r.index,
+                replay.display()
+            );
+        };
+        ensure!(
+            e.d2_bits == r.d2_bits,
+            "MISMATCH reading {}: d2 bits device {:?}, replay {:?}",
+            r.index,
+            r.d2_bits,
+            e.d2_bits
+        );
+        same += usize::from(r.d2_bits.is_some());
+    }
+    println!(
+        "fallback: slot {from} (unconfirmed) faulted on all {probation} readings of its probation; the \
+         node fell back to {to}, reported it, and scored readings {}..{} with d2 bit-identical to replay \
+         ({same} scored)",
+        last + 1,
+        after.last().map_or(last, |r| r.index)
+    );
     Ok(())
 }
 
@@ -706,27 +919,70 @@ struct Reach {
     indirect: Vec<String>,
 }
 
+/// The start address and name of a function header line of the disassembly
+/// (`00001000 <name>:`).
+fn func_header(line: &str) -> Option<(u64, &str)> {
+    let (addr, name) = line.strip_suffix(">:")?.split_once(" <")?;
+    Some((u64::from_str_radix(addr.trim(), 16).ok()?, name))
+}
+
+/// The address of an instruction line of the disassembly (`    1000:\tpush\t{r7, lr}`).
+fn insn_addr(line: &str) -> Option<u64> {
+    let (addr, _) = line.split_once(':')?;
+    u64::from_str_radix(addr.trim(), 16).ok()
+}
+
+/// Function sizes by start address, from the symbol table (`arm-none-eabi-nm -S`): code symbols
+/// only, the largest of aliases at one address.
+fn parse_sizes(nm: &str) -> BTreeMap<u64, u64> {
+    let mut m = BTreeMap::new();
+    for line in nm.lines() {
+        let mut w = line.split_whitespace();
+        let (Some(addr), Some(size), Some(kind)) = (w.next(), w.next(), w.next()) else {
+            continue;
+        };
+        if !matches!(kind, "t" | "T" | "W" | "w") {
+            continue;
+        }
+        let (Ok(addr), Ok(size)) = (u64::from_str_radix(addr, 16), u64::from_str_radix(size, 16))
+        else {
+            continue;
+        };
+        let e = m.entry(addr & !1).or_insert(0);
+        *e = (*e).max(size);
+    }
+    m
+}
+
 /// Follow direct calls and branches (`bl`, `b`, `b.w`, `cbz`...) from the functions whose name ends
 /// with one of `roots`, in the text of `arm-none-eabi-objdump -d -C --no-show-raw-insn`.
-fn analyse(dis: &str, roots: &[String]) -> Result<Reach> {
+///
+/// `sizes` gives each function's size by its start address (from the symbol table). Bytes after
+/// a function's end and before the next symbol are padding, not code: on thumbv6m the compiler's
+/// built-ins are padded with `0xd4d4`, which objdump decodes as a `bmi.n` into whatever lies
+/// before, and following it would reach functions no call reaches. Instructions at or past a
+/// function's end are skipped; a function with no known size is read to the next header.
+fn analyse(dis: &str, sizes: &BTreeMap<u64, u64>, roots: &[String]) -> Result<Reach> {
     // Function name -> (direct call or branch targets, whether it makes an indirect call).
     let mut funcs: BTreeMap<String, (BTreeSet<String>, bool)> = BTreeMap::new();
-    let mut cur: Option<String> = None;
+    let mut cur: Option<(String, Option<u64>)> = None;
     for line in dis.lines() {
-        if let Some(name) = line
-            .strip_suffix(">:")
-            .and_then(|l| l.split_once(" <"))
-            .map(|(_, n)| n)
-        {
-            cur = Some(name.to_string());
+        if let Some((start, name)) = func_header(line) {
+            let end = sizes.get(&start).filter(|s| **s > 0).map(|s| start + s);
+            cur = Some((name.to_string(), end));
             funcs.entry(name.to_string()).or_default();
             continue;
         }
-        let Some(f) = &cur else { continue };
+        let Some((f, end)) = &cur else { continue };
         let mut parts = line.split('\t').map(str::trim);
         let (Some(_addr), Some(op)) = (parts.next(), parts.next()) else {
             continue;
         };
+        if let (Some(end), Some(at)) = (end, insn_addr(line)) {
+            if at >= *end {
+                continue; // padding after the function
+            }
+        }
         let args = parts.next().unwrap_or("");
         let entry = funcs.entry(f.clone()).or_default();
         let mnemonic = op.split('.').next().unwrap_or(op);
@@ -779,13 +1035,60 @@ fn analyse(dis: &str, roots: &[String]) -> Result<Reach> {
     })
 }
 
-fn reach(elf: &Path, roots: &[String]) -> Result<()> {
+/// The disassembly with a call to `core::panicking::panic` planted after the last instruction
+/// inside the first function whose name ends with `func` (inside its size, so before any padding).
+fn plant_panic(dis: &str, sizes: &BTreeMap<u64, u64>, func: &str) -> Result<String> {
+    let lines: Vec<&str> = dis.lines().collect();
+    let (head, start) = lines
+        .iter()
+        .enumerate()
+        .find_map(|(i, l)| {
+            func_header(l)
+                .filter(|(_, n)| n.ends_with(func))
+                .map(|(a, _)| (i, a))
+        })
+        .ok_or_else(|| anyhow!("no function named *{func} to plant a panic in"))?;
+    let end = sizes
+        .get(&start)
+        .copied()
+        .filter(|s| *s > 0)
+        .map(|s| start + s);
+    let mut last = None;
+    for (i, l) in lines.iter().enumerate().skip(head + 1) {
+        if func_header(l).is_some() {
+            break;
+        }
+        if let Some(at) = insn_addr(l) {
+            if end.is_none_or(|e| at < e) {
+                last = Some((i, at));
+            }
+        }
+    }
+    let (i, at) = last.ok_or_else(|| anyhow!("*{func} has no instructions"))?;
+    let mut out = String::new();
+    for (k, l) in lines.iter().enumerate() {
+        writeln!(out, "{l}")?;
+        if k == i {
+            writeln!(out, "{at:8x}:\tbl\t0 <core::panicking::panic>")?;
+        }
+    }
+    Ok(out)
+}
+
+fn reach(elf: &Path, roots: &[String], plant: Option<&str>) -> Result<()> {
     let elf_s = elf.to_string_lossy();
-    let dis = run_tool(
+    let mut dis = run_tool(
         "arm-none-eabi-objdump",
         &["-d", "-C", "--no-show-raw-insn", &elf_s],
     )?;
-    let r = analyse(&dis, roots).with_context(|| format!("{}", elf.display()))?;
+    let sizes = parse_sizes(&run_tool(
+        "arm-none-eabi-nm",
+        &["-S", "--defined-only", &elf_s],
+    )?);
+    if let Some(func) = plant {
+        dis = plant_panic(&dis, &sizes, func)?;
+    }
+    let r = analyse(&dis, &sizes, roots).with_context(|| format!("{}", elf.display()))?;
     ensure!(
         r.panics.is_empty(),
         "panic machinery reachable from {roots:?} in {}: {:?}",
@@ -937,7 +1240,7 @@ fn figures(
             &share,
         ),
         (
-            "`ellipsoid-node`, thumbv6m-none-eabi (Cortex-M0+)",
+            "`ellipsoid-node`, thumbv6m-none-eabi (Cortex-M0, `microbit` board)",
             &m0,
             &share_m0,
         ),
@@ -1038,6 +1341,152 @@ fn figures(
     Ok(())
 }
 
+/// Replace the text between `begin` (a line starting with it) and `end` (a whole line) in a README.
+fn splice(readme: &Path, begin: &str, end: &str, block: &str) -> Result<()> {
+    let old = read_text(readme)?;
+    let (Some(b), Some(e)) = (old.find(begin), old.find(end)) else {
+        bail!("{}: no markers {begin} ... {end}", readme.display());
+    };
+    ensure!(b < e, "{}: {end} before {begin}", readme.display());
+    let after = (e + end.len()).min(old.len());
+    let after = after + usize::from(old[after..].starts_with('\n'));
+    let new = format!("{}{}{}", &old[..b], block, &old[after..]);
+    write_atomic(readme, new.as_bytes())?;
+    println!("figures: written to {}", readme.display());
+    Ok(())
+}
+
+/// What `figures-m0` reads.
+struct M0Inputs<'a> {
+    elf: &'a Path,
+    cost: &'a Path,
+    cost_m4: &'a Path,
+    device: &'a Path,
+    compared: &'a Path,
+    reach: &'a Path,
+    readme: &'a Path,
+}
+
+/// The `cost n=...` lines of a `score-cost` output, by N: (instructions per score, loop and call,
+/// floor operations, instructions per floor operation).
+fn cost_lines(path: &Path) -> Result<BTreeMap<u32, (f64, f64, u64, f64)>> {
+    let text = read_text(path)?;
+    let mut m = BTreeMap::new();
+    for (i, line) in text.lines().enumerate() {
+        if !line.starts_with("cost ") {
+            continue;
+        }
+        let get = |k: &str| -> Result<&str> {
+            kv(line, k).ok_or_else(|| anyhow!("{}:{}: no {k}= in {line:?}", path.display(), i + 1))
+        };
+        let num = |k: &str| -> Result<f64> {
+            get(k)?
+                .parse::<f64>()
+                .with_context(|| format!("{}:{}: field {k}", path.display(), i + 1))
+        };
+        let n: u32 = get("n")?
+            .parse()
+            .with_context(|| format!("{}:{}: field n", path.display(), i + 1))?;
+        let floor = num("floor_ops")? as u64;
+        m.insert(
+            n,
+            (
+                num("instr_per_score")?,
+                num("loop_overhead")?,
+                floor,
+                num("instr_per_op")?,
+            ),
+        );
+    }
+    ensure!(!m.is_empty(), "{}: no cost lines", path.display());
+    Ok(m)
+}
+
+fn figures_m0(i: &M0Inputs<'_>) -> Result<()> {
+    let sec = sections(i.elf)?;
+    let share = core_share(i.elf)?;
+    let cost = cost_lines(i.cost)?;
+    let cost_m4 = cost_lines(i.cost_m4)?;
+    let cost_text = read_text(i.cost)?;
+    let dev_text = read_text(i.device)?;
+    let cal = cost_text
+        .lines()
+        .find(|l| l.starts_with("calibrate "))
+        .ok_or_else(|| anyhow!("{}: no calibrate line", i.cost.display()))?;
+    let cal_field = |k: &str| -> Result<&str> {
+        kv(cal, k).ok_or_else(|| anyhow!("{}: no {k}= in {cal:?}", i.cost.display()))
+    };
+    let peak = dev_text
+        .lines()
+        .find_map(|l| l.strip_prefix("stack peak_bytes="))
+        .ok_or_else(|| anyhow!("{}: no stack line", i.device.display()))?;
+    let get = |k: &str| sec.get(k).copied().unwrap_or(0);
+    let mut s = String::new();
+    writeln!(s, "<!-- figures-m0:begin (written by firmware-example/e2e.sh through node-tool; do not edit) -->")?;
+    writeln!(s, "### Cortex-M0 figures (emulated micro:bit)\n")?;
+    writeln!(s, "Measured by `firmware-example/e2e.sh` on the `microbit` board's images (`thumbv6m-none-eabi`, the")?;
+    writeln!(s, "`firmware` profile) in `qemu-system-arm -machine microbit` (nRF51822: Cortex-M0, no FPU, 256 KiB flash,")?;
+    writeln!(s, "16 KiB RAM). The demo's readings come from a host file over semihosting, 8 readings a read.\n")?;
+    writeln!(s, "| image | `.text` | `.rodata` | `.data` | `.bss` | core's `.text` | core's `.rodata` | flash for the firmware | RAM |")?;
+    writeln!(s, "|---|---|---|---|---|---|---|---|---|")?;
+    writeln!(
+        s,
+        "| `ellipsoid-node`, `microbit` | {} | {} | {} | {} | {} | {} | 224 KiB (slots: 2 × 16 KiB at 0x38000, 0x3C000) | 16 KiB |",
+        get(".text"),
+        get(".rodata"),
+        get(".data"),
+        get(".bss"),
+        share.get(".text").copied().unwrap_or(0),
+        share.get(".rodata").copied().unwrap_or(0),
+    )?;
+    writeln!(s)?;
+    writeln!(s, "**Stack.** Peak while scoring the demo's readings at N = 5 (painted as on the M4F, boot and the decoded")?;
+    writeln!(s, "model included): **{peak} bytes** of the 16 KiB.\n")?;
+    writeln!(s, "**Cost per score in f32 (software float).** `score-cost` on this board, measured as on the M4F. With")?;
+    writeln!(
+        s,
+        "`-icount shift=0`, a loop of {} instructions advanced SysTick by {} ticks: {} instructions per tick.",
+        cal_field("instructions")?,
+        cal_field("ticks")?,
+        cal_field("instr_per_tick")?
+    )?;
+    writeln!(s, "Every f32 operation is a call into the compiler's software float (`__aeabi_fmul`, `__aeabi_fadd`...).\n")?;
+    writeln!(s, "| N | instructions per score | of which loop and call | floor F(N) | instructions per floor op | × the M4F | stack of a score, bytes |")?;
+    writeln!(s, "|---|---|---|---|---|---|---|")?;
+    for (n, (per, overhead, floor, ipo)) in &cost {
+        let ratio = cost_m4
+            .get(n)
+            .map_or("—".to_string(), |m4| format!("{:.1}", per / m4.0));
+        let st = cost_text
+            .lines()
+            .find(|l| l.starts_with(&format!("stack n={n} ")))
+            .and_then(|l| kv(l, "score_bytes"))
+            .ok_or_else(|| anyhow!("{}: no stack line for n={n}", i.cost.display()))?;
+        writeln!(
+            s,
+            "| {n} | {per:.1} | {overhead:.1} | {floor} | {ipo:.2} | {ratio} | {st} |"
+        )?;
+    }
+    writeln!(s)?;
+    writeln!(
+        s,
+        "**End to end on the M0** (the checks this run passed):\n"
+    )?;
+    for line in read_text(i.compared)?
+        .lines()
+        .chain(read_text(i.reach)?.lines())
+    {
+        writeln!(s, "- {line}")?;
+    }
+    writeln!(s, "<!-- figures-m0:end -->")?;
+    splice(
+        i.readme,
+        "<!-- figures-m0:begin",
+        "<!-- figures-m0:end -->",
+        &s,
+    )
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -1073,7 +1522,7 @@ mod tests {
 
     #[test]
     fn reach_finds_panics_through_calls_and_tail_branches() {
-        let r = analyse(DIS, &roots(&["node::score"])).unwrap();
+        let r = analyse(DIS, &BTreeMap::new(), &roots(&["node::score"])).unwrap();
         assert_eq!(r.roots, 1);
         assert_eq!(
             r.panics,
@@ -1085,12 +1534,77 @@ mod tests {
 
     #[test]
     fn reach_passes_a_clean_function_and_flags_indirect_calls() {
-        let r = analyse(DIS, &roots(&["::safe"])).unwrap();
+        let r = analyse(DIS, &BTreeMap::new(), &roots(&["::safe"])).unwrap();
         assert!(r.panics.is_empty() && r.indirect.is_empty());
         assert_eq!(r.seen.len(), 1);
-        let r = analyse(DIS, &roots(&["::dynamic"])).unwrap();
+        let r = analyse(DIS, &BTreeMap::new(), &roots(&["::dynamic"])).unwrap();
         assert_eq!(r.indirect, ["app::dynamic"]);
-        assert!(analyse(DIS, &roots(&["::missing"])).is_err());
+        assert!(analyse(DIS, &BTreeMap::new(), &roots(&["::missing"])).is_err());
+    }
+
+    // The shape of the thumbv6m image (binutils 2.40): `__aeabi_dmul` is 10 bytes long (its size in
+    // the symbol table), and the two bytes after it are 0xd4d4 padding, which objdump reads as a
+    // `bmi.n` back into the formatter.
+    const DIS_M0: &str = "
+00005800 <<&T as core::fmt::Display>::fmt>:
+    5800:\tpush\t{r7, lr}
+    5802:\tblx\tr3
+    5804:\tbl\t5900 <core::panicking::panic_fmt>
+    5808:\tpop\t{r7, pc}
+
+00005850 <__aeabi_dmul>:
+    5850:\tpush\t{r7, lr}
+    5852:\tmov\tr7, sp
+    5854:\tbl\t585c <compiler_builtins::float::mul::__muldf3>
+    5858:\tpop\t{r7, pc}
+    585a:\tbmi.n\t5806 <<&T as core::fmt::Display>::fmt+0x6>
+
+0000585c <compiler_builtins::float::mul::__muldf3>:
+    585c:\tpush\t{r4, r5, r6, r7, lr}
+    585e:\tpop\t{r4, r5, r6, r7, pc}
+
+00006000 <app::node::score>:
+    6000:\tpush\t{r7, lr}
+    6002:\tbl\t5850 <__aeabi_dmul>
+    6006:\tpop\t{r7, pc}
+";
+    // `arm-none-eabi-nm -S --defined-only` of the same functions (thumb addresses are odd in some
+    // tools' output: the low bit is ignored).
+    const NM_M0: &str = "\
+00005800 0000000a t <&T as core::fmt::Display>::fmt
+00005850 0000000a T __aeabi_dmul
+0000585d 00000004 t compiler_builtins::float::mul::__muldf3
+00006000 00000008 t app::node::score
+00007000 00000004 r some_table
+";
+
+    #[test]
+    fn reach_skips_the_padding_after_a_function_and_still_catches_a_planted_panic() {
+        let sizes = parse_sizes(NM_M0);
+        assert_eq!(sizes.get(&0x585c), Some(&4));
+        assert!(
+            !sizes.contains_key(&0x7000),
+            "data symbols are not functions"
+        );
+        let score = roots(&["node::score"]);
+        // Without sizes the padding is read as a branch into the formatter: a false alarm.
+        let naive = analyse(DIS_M0, &BTreeMap::new(), &score).unwrap();
+        assert_eq!(naive.panics, ["core::panicking::panic_fmt"]);
+        assert_eq!(naive.indirect, ["<&T as core::fmt::Display>::fmt"]);
+        // With them, the path is clean...
+        let r = analyse(DIS_M0, &sizes, &score).unwrap();
+        assert!(r.panics.is_empty() && r.indirect.is_empty(), "{r:?}");
+        assert_eq!(r.seen.len(), 3, "{r:?}");
+        // ...and a call planted at the last instruction inside `__aeabi_dmul` (just before its
+        // padding) is found.
+        let planted = plant_panic(DIS_M0, &sizes, "__aeabi_dmul").unwrap();
+        assert!(
+            planted.contains("    5858:\tbl\t0 <core::panicking::panic>"),
+            "{planted}"
+        );
+        let r = analyse(&planted, &sizes, &score).unwrap();
+        assert_eq!(r.panics, ["core::panicking::panic"]);
+        assert!(plant_panic(DIS_M0, &sizes, "::missing").is_err());
     }
 
     /// A device log that reports exactly the pins of `golden-n5.pins`, with `edit` applied to
