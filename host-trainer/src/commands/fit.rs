@@ -33,7 +33,8 @@ pub enum ShrinkArg {
 /// Options of `fit`.
 #[derive(Debug, Clone, Args)]
 pub struct FitArgs {
-    /// Baseline CSV of healthy operation, one reading a row.
+    /// Baseline of healthy operation, one reading a row: a CSV, or a Parquet file (told by the
+    /// `PAR1` magic number at both ends of the file, whatever its name).
     pub baseline: PathBuf,
     /// Where to write the model blob; its model card goes beside it (`.json`).
     #[arg(long, short, value_name = "FILE")]
