@@ -268,6 +268,16 @@ pub enum IngestError {
         /// The cell.
         value: String,
     },
+    /// A row of a fleet log has no machine id (`fit --by`).
+    #[error("{file}{at}: column `{column}` is empty, so the row belongs to no machine")]
+    NoMachine {
+        /// The file.
+        file: String,
+        /// `:LINE` for a CSV, `: row ROW` for Parquet.
+        at: String,
+        /// The machine column.
+        column: String,
+    },
     /// Reading a row failed for a reason of the CSV layer (for instance an I/O error mid-file).
     #[error("{file}:{line}: {message}")]
     Record {

@@ -31,6 +31,7 @@ mod layout;
 mod lines;
 mod parquet;
 mod reader;
+mod split;
 mod table;
 
 pub use cell::parse_label;
@@ -39,6 +40,7 @@ pub use layout::Layout;
 pub use lines::{count_lines, nth_line_start, split_ranges};
 pub use parquet::{is_parquet, parquet_to_csv};
 pub use reader::{progress_bar, Reader, Row};
+pub use split::{split_by, Part, SplitLog, FLUSH_BYTES};
 pub use table::{read_table, Table};
 
 /// How many reasons for skipped rows a [`Reader`] keeps.

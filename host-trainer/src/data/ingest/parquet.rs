@@ -72,6 +72,9 @@ pub(super) struct ParquetRows {
     feat: Vec<Column>,
     ts: Option<Column>,
     label: Option<Column>,
+    /// The column that says which machine a row is from (`fit --by`), read as text.
+    group_field: Option<usize>,
+    group: Option<Column>,
     values: Vec<f64>,
     ts_text: String,
     allow_missing: bool,
@@ -90,6 +93,14 @@ impl ParquetRows {
     pub(super) fn open(
         path: &Path,
         opts: &CsvOptions,
+    ) -> Result<(ParquetRows, Layout), IngestError> {
+        Self::open_inner(path, opts, None)
+    }
+
+    fn open_inner(
+        path: &Path,
+        opts: &CsvOptions,
+        by: Option<&str>,
     ) -> Result<(ParquetRows, Layout), IngestError> {
         let file = path.display().to_string();
         let f = File::open(path).map_err(|source| IngestError::Io {
@@ -114,7 +125,34 @@ impl ParquetRows {
             names.push(name);
             leaves.push(i);
         }
-        let roles = resolve_roles(&file, &names, opts).map_err(|e| schema_error(&file, e))?;
+        let mut roles = resolve_roles(&file, &names, opts).map_err(|e| schema_error(&file, e))?;
+        let group_field = match by {
+            None => None,
+            Some(by) => {
+                let Some(g) = names.iter().position(|n| n == by) else {
+                    return Err(IngestError::ParquetSchema {
+                        file,
+                        message: format!(
+                            "no machine column named `{by}` (the file has: {})",
+                            names.join(", ")
+                        ),
+                    });
+                };
+                if let Some(k) = roles.feature_fields.iter().position(|&i| i == g) {
+                    if opts.columns.is_some() {
+                        return Err(IngestError::ParquetSchema {
+                            file,
+                            message: format!("column `{by}` cannot be both feature and machine"),
+                        });
+                    }
+                    roles.feature_fields.remove(k);
+                }
+                if roles.feature_fields.is_empty() {
+                    return Err(IngestError::NoFeatures { file });
+                }
+                Some(g)
+            }
+        };
         let used = roles
             .feature_fields
             .iter()
@@ -179,6 +217,8 @@ impl ParquetRows {
                 feat: Vec::new(),
                 ts: None,
                 label: None,
+                group_field,
+                group: None,
                 ts_text: String::new(),
                 allow_missing: opts.allow_missing,
                 skip_bad_rows: opts.skip_bad_rows,
@@ -197,7 +237,7 @@ impl ParquetRows {
             return Ok(false);
         }
         let n = usize::try_from(meta.row_group(g).num_rows()).unwrap_or(0);
-        let (feat, ts, label) = {
+        let (feat, ts, label, group) = {
             let file = &self.file;
             let err = |e: parquet::errors::ParquetError| IngestError::ParquetCorrupt {
                 file: file.clone(),
@@ -218,8 +258,10 @@ impl ParquetRows {
             }
             let ts = self.roles.timestamp_field.map(read).transpose()?;
             let label = self.roles.label_field.map(read).transpose()?;
-            (feat, ts, label)
+            let group = self.group_field.map(read).transpose()?;
+            (feat, ts, label, group)
         };
+        self.group = group;
         self.base += self.group_rows as u64;
         self.next_group += 1;
         self.feat = feat;
@@ -230,8 +272,25 @@ impl ParquetRows {
         Ok(true)
     }
 
+    /// Open `path` with the column `by` read as text beside the features (and never a feature).
+    pub(super) fn open_grouped(
+        path: &Path,
+        opts: &CsvOptions,
+        by: &str,
+    ) -> Result<(ParquetRows, Layout), IngestError> {
+        Self::open_inner(path, opts, Some(by))
+    }
+
+    /// The machine column's text in the row [`Self::next_row`] last returned (empty if null).
+    pub(super) fn last_group(&self) -> String {
+        match &self.group {
+            Some(c) if self.at > 0 => cell_text(c, self.at - 1),
+            _ => String::new(),
+        }
+    }
+
     /// Whether feature `j` of the row [`Self::next_row`] last returned is null.
-    fn last_null(&self, j: usize) -> bool {
+    pub(super) fn last_null(&self, j: usize) -> bool {
         match self.feat.get(j) {
             Some(Column::Numbers(_, null)) => self.at > 0 && null[self.at - 1],
             _ => false,
