@@ -340,7 +340,7 @@ impl ParquetRows {
                     let timestamp = match &self.ts {
                         None => None,
                         Some(c) => {
-                            self.ts_text = cell_text(c, k);
+                            write_cell(&mut self.ts_text, c, k);
                             Some(self.ts_text.as_str())
                         }
                     };
@@ -424,6 +424,19 @@ fn schema_error(file: &str, e: IngestError) -> IngestError {
     }
 }
 
+/// [`cell_text`] into a reused buffer; a whole number (an integer timestamp) is written without
+/// going through the `f64` formatter.
+fn write_cell(out: &mut String, c: &Column, k: usize) {
+    use std::fmt::Write as _;
+    out.clear();
+    match c {
+        Column::Numbers(v, null) if !null[k] && v[k].fract() == 0.0 && v[k].abs() < 9.0e15 => {
+            let _ = write!(out, "{}", v[k] as i64);
+        }
+        c => out.push_str(&cell_text(c, k)),
+    }
+}
+
 fn cell_text(c: &Column, k: usize) -> String {
     match c {
         Column::Numbers(v, null) => {
@@ -471,16 +484,33 @@ fn spread<T: Clone>(values: Vec<T>, defs: &[i16], n: usize, max_def: i16) -> Vec
     out
 }
 
-fn numbers<T: Clone>(
+/// Numbers from the non-null `values`, NaN and a null flag where the definition level says null.
+fn numbers<T: Copy>(
     values: Vec<T>,
     defs: &[i16],
     n: usize,
     max_def: i16,
     f: impl Fn(T) -> f64,
 ) -> Column {
-    let spread = spread(values, defs, n, max_def);
-    let null = spread.iter().map(Option::is_none).collect();
-    let v = spread.into_iter().map(|x| x.map_or(f64::NAN, &f)).collect();
+    if max_def == 0 || values.len() == n {
+        // No nulls: every level is the maximum.
+        return Column::Numbers(values.into_iter().map(f).collect(), vec![false; n]);
+    }
+    let mut v = Vec::with_capacity(n);
+    let mut null = Vec::with_capacity(n);
+    let mut it = values.into_iter();
+    for &d in defs.iter().take(n) {
+        match (d == max_def).then(|| it.next()).flatten() {
+            Some(x) => {
+                v.push(f(x));
+                null.push(false);
+            }
+            None => {
+                v.push(f64::NAN);
+                null.push(true);
+            }
+        }
+    }
     Column::Numbers(v, null)
 }
 
@@ -488,11 +518,7 @@ fn decode(col: ColumnReader, n: usize, max_def: i16) -> parquet::errors::Result<
     Ok(match col {
         ColumnReader::DoubleColumnReader(mut r) => {
             let (v, d) = read_all(&mut r, n)?;
-            if max_def == 0 {
-                Column::Numbers(v, vec![false; n])
-            } else {
-                numbers(v, &d, n, max_def, |x| x)
-            }
+            numbers(v, &d, n, max_def, |x| x)
         }
         ColumnReader::FloatColumnReader(mut r) => {
             let (v, d) = read_all(&mut r, n)?;
