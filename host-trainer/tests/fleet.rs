@@ -253,3 +253,30 @@ fn a_bad_row_of_one_machine_names_the_log_line() {
         "{err}"
     );
 }
+
+#[test]
+fn a_parquet_fleet_log_gives_the_models_of_its_csv_twin() {
+    // Both written by pyarrow's `make_twins.py` (tests/data/parquet), the same numbers.
+    let data = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data/parquet");
+    let dir = tempfile::tempdir().unwrap();
+    let run = |input: &str| {
+        let out = dir.path().join(input);
+        std::fs::create_dir(&out).unwrap();
+        ellipsoid()
+            .args(["fit", "--by", "machine", "--trained-at", "1", "--out"])
+            .arg(&out)
+            .arg(data.join(input))
+            .assert()
+            .success()
+            .stdout(predicates::str::contains("Fitted 3 of 3 machines"));
+        out
+    };
+    let (c, p) = (run("fleet.csv"), run("fleet.parquet"));
+    for name in ["north-1.blob", "north_2.blob", "south_3.blob"] {
+        assert_eq!(
+            std::fs::read(c.join(name)).unwrap(),
+            std::fs::read(p.join(name)).unwrap(),
+            "{name}"
+        );
+    }
+}

@@ -14,6 +14,8 @@ committed, the test regenerates it. The files written (all committed):
                               holds the same numbers as text (the FLOAT as its exact f64 value)
   null.parquet                the same with row 7's `flow` null
   text.parquet                the same with `flow` as strings
+  fleet.csv / fleet.parquet   3 machines (`machine` a string column) × 400 rows of 3 channels,
+                              interleaved, row groups of 500 rows
   demo_baseline.parquet       the demo baseline read by pyarrow's CSV reader, row groups of 4096
 """
 
@@ -56,6 +58,38 @@ with open("small.csv", "w") as f:
 nulled = [None if i == 6 else v for i, v in enumerate(flow)]
 pq.write_table(table(pa.array(nulled, pa.float64())), "null.parquet", row_group_size=5)
 pq.write_table(table(pa.array([str(v) for v in flow], pa.string())), "text.parquet", row_group_size=5)
+
+# A small fleet: a linear congruential generator, so that the numbers need no numpy.
+state = 12345
+
+
+def uniform():
+    global state
+    state = (state * 6364136223846793005 + 1442695040888963407) % 2**64
+    return (state >> 11) / 2**53
+
+
+ids, xs, ys, zs = [], [], [], []
+for i in range(400):
+    for k, name in enumerate(["north-1", "north 2", "south/3"]):
+        a, b, c = uniform() - 0.5, uniform() - 0.5, uniform() - 0.5
+        ids.append(name)
+        xs.append(round(10.0 + k + a, 4))
+        ys.append(round(3.0 + 0.5 * a + 0.1 * b, 4))
+        zs.append(round(40.0 + 2.0 * c * (1 + k), 4))
+fleet = pa.table(
+    {
+        "machine": pa.array(ids, pa.string()),
+        "x": pa.array(xs, pa.float64()),
+        "y": pa.array(ys, pa.float64()),
+        "z": pa.array(zs, pa.float64()),
+    }
+)
+pq.write_table(fleet, "fleet.parquet", row_group_size=500)
+with open("fleet.csv", "w") as f:
+    f.write("machine,x,y,z\n")
+    for r in zip(ids, xs, ys, zs):
+        f.write(f"{r[0]},{r[1]!r},{r[2]!r},{r[3]!r}\n")
 
 if len(sys.argv) > 1:
     demo = pacsv.read_csv(sys.argv[1])
