@@ -113,6 +113,14 @@ fn bad_parquet_input_names_file_row_and_column() {
         err.contains("cut.parquet: not a readable Parquet file"),
         "{err}"
     );
+    // A codec this build leaves out is named as such, not as damage.
+    let err = read_table(&data("zstd.parquet"), &CsvOptions::default())
+        .unwrap_err()
+        .to_string();
+    assert!(
+        err.contains("zstd.parquet: the data is compressed with a codec this build does not read"),
+        "{err}"
+    );
     // A damaged column chunk (footer intact): the row group is named.
     let mut bad = whole.clone();
     for b in &mut bad[4..200] {

@@ -378,7 +378,7 @@ pub fn summary_csv(run: &FleetRun, w: &mut dyn std::io::Write) -> Result<()> {
             },
             m.rows.to_string(),
             m.rows_fitted.to_string(),
-            opt(m.threshold.map(f64::from)),
+            m.threshold.map_or(String::new(), |t| t.to_string()),
             opt(m.holdout_alarms_per_day),
             opt(m.holdout_alarms_per_day_upper95),
             m.warnings.join(" | "),

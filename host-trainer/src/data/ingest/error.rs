@@ -196,6 +196,17 @@ pub enum IngestError {
         /// The `parquet` crate's words.
         message: String,
     },
+    /// A Parquet file is compressed with a codec this build does not read.
+    #[error(
+        "{file}: the data is compressed with a codec this build does not read (only uncompressed \
+         and Snappy-compressed Parquet is read; rewrite it with one of those): {message}"
+    )]
+    ParquetCodec {
+        /// The file.
+        file: String,
+        /// The `parquet` crate's words.
+        message: String,
+    },
     /// The column roles do not fit a Parquet file's columns (a missing or doubly used column).
     #[error("{file}: {message}")]
     ParquetSchema {

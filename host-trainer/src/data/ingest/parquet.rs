@@ -239,10 +239,20 @@ impl ParquetRows {
         let n = usize::try_from(meta.row_group(g).num_rows()).unwrap_or(0);
         let (feat, ts, label, group) = {
             let file = &self.file;
-            let err = |e: parquet::errors::ParquetError| IngestError::ParquetCorrupt {
-                file: file.clone(),
-                group: g + 1,
-                message: e.to_string(),
+            let err = |e: parquet::errors::ParquetError| {
+                let message = e.to_string();
+                if message.contains("Disabled feature") {
+                    IngestError::ParquetCodec {
+                        file: file.clone(),
+                        message,
+                    }
+                } else {
+                    IngestError::ParquetCorrupt {
+                        file: file.clone(),
+                        group: g + 1,
+                        message,
+                    }
+                }
             };
             let rg = self.reader.get_row_group(g).map_err(err)?;
             let leaves = &self.leaves;

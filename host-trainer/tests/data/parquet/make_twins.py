@@ -14,6 +14,7 @@ committed, the test regenerates it. The files written (all committed):
                               holds the same numbers as text (the FLOAT as its exact f64 value)
   null.parquet                the same with row 7's `flow` null
   text.parquet                the same with `flow` as strings
+  zstd.parquet                3 rows of 2 DOUBLE columns, Zstandard-compressed (a codec we do not read)
   fleet.csv / fleet.parquet   3 machines (`machine` a string column) × 400 rows of 3 channels,
                               interleaved, row groups of 500 rows
   demo_baseline.parquet       the demo baseline read by pyarrow's CSV reader, row groups of 4096
@@ -58,6 +59,10 @@ with open("small.csv", "w") as f:
 nulled = [None if i == 6 else v for i, v in enumerate(flow)]
 pq.write_table(table(pa.array(nulled, pa.float64())), "null.parquet", row_group_size=5)
 pq.write_table(table(pa.array([str(v) for v in flow], pa.string())), "text.parquet", row_group_size=5)
+
+pq.write_table(
+    pa.table({"a": [1.0, 2.0, 3.0], "b": [2.0, 1.0, 5.0]}), "zstd.parquet", compression="zstd"
+)
 
 # A small fleet: a linear congruential generator, so that the numbers need no numpy.
 state = 12345
