@@ -18,6 +18,8 @@ pub struct Cli {
     command: Command,
 }
 
+// Parsed once per run: the size of the largest variant (`fit`'s options) does not matter.
+#[allow(clippy::large_enum_variant)]
 #[derive(Debug, Subcommand)]
 enum Command {
     /// Fit a model of healthy operation from a baseline CSV and write a flashable blob.

@@ -12,6 +12,7 @@ use crate::data::output::Outputs;
 use crate::data::paths::Role;
 use crate::fit::Shrinkage;
 use crate::pipeline::fit_report::report_data;
+use crate::pipeline::fleet::{fit_fleet, FleetSpec};
 use crate::pipeline::limits::LimitSpec;
 use crate::pipeline::summary::{summary_json, summary_text};
 use crate::pipeline::train::{check_output_paths, stage_outputs, train, TrainSpec};
@@ -33,11 +34,21 @@ pub enum ShrinkArg {
 /// Options of `fit`.
 #[derive(Debug, Clone, Args)]
 pub struct FitArgs {
-    /// Baseline CSV of healthy operation, one reading a row.
+    /// Baseline of healthy operation, one reading a row: a CSV, or a Parquet file (told by the
+    /// `PAR1` magic number at both ends of the file, whatever its name).
     pub baseline: PathBuf,
-    /// Where to write the model blob; its model card goes beside it (`.json`).
+    /// Where to write the model blob; its model card goes beside it (`.json`). With `--by`, an
+    /// existing folder for every machine's blob and card and the fleet summary.
     #[arg(long, short, value_name = "FILE")]
     pub out: PathBuf,
+    /// Fit one model per value of this column (the machine's id) from one long log: a blob and
+    /// card per machine, `fleet.csv` and `fleet.html`, in the `--out` folder.
+    #[arg(long, value_name = "COLUMN")]
+    pub by: Option<String>,
+    /// With `--by`: if any machine's fit fails, write nothing (by default the others are written
+    /// and the failure is listed in the fleet summary).
+    #[arg(long, requires = "by")]
+    pub stop_on_bad_machine: bool,
     #[command(flatten)]
     pub csv: CsvArgs,
     /// Take the natural log of this positive, right-skewed column first (repeatable).
@@ -174,6 +185,9 @@ impl FitArgs {
 
 /// Run `fit`.
 pub fn run(a: &FitArgs) -> Result<()> {
+    if let Some(by) = &a.by {
+        return run_fleet(a, by);
+    }
     let mut inputs = vec![Role::new("the baseline", &a.baseline)];
     if let Some(v) = &a.validation {
         inputs.push(Role::new("the --validation file", v));
@@ -199,6 +213,54 @@ pub fn run(a: &FitArgs) -> Result<()> {
             a.report
                 .as_ref()
                 .map_or(String::new(), |r| format!(" and {}", r.display()))
+        );
+    }
+    Ok(())
+}
+
+/// Run `fit --by`: one model per machine.
+fn run_fleet(a: &FitArgs, by: &str) -> Result<()> {
+    anyhow::ensure!(
+        a.report.is_none(),
+        "--report cannot be used with --by: the fleet overview is written as fleet.html in the --out folder"
+    );
+    let spec = FleetSpec {
+        log: a.baseline.clone(),
+        by: by.to_string(),
+        out_dir: a.out.clone(),
+        train: a.spec(),
+        stop_on_bad_machine: a.stop_on_bad_machine,
+        workers: None,
+    };
+    let run = fit_fleet(&spec)?;
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&run)?);
+    } else {
+        println!(
+            "Fitted {} of {} machines from {} (by `{}`){}.",
+            run.machines.len() - run.failed(),
+            run.machines.len(),
+            run.log,
+            run.by,
+            if run.rows_without_machine > 0 {
+                format!(
+                    "; {} rows without a machine id skipped",
+                    run.rows_without_machine
+                )
+            } else {
+                String::new()
+            }
+        );
+        for m in run.machines.iter().filter(|m| m.error.is_some()) {
+            println!(
+                "  FAILED {}: {}",
+                m.machine,
+                m.error.as_deref().unwrap_or("")
+            );
+        }
+        println!(
+            "Wrote a blob and card per fitted machine, fleet.csv and fleet.html in {}.",
+            a.out.display()
         );
     }
     Ok(())

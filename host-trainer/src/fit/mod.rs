@@ -42,6 +42,7 @@ use crate::stats::moments::correlation_of;
 mod check;
 mod estimate;
 mod outliers;
+mod parquet;
 mod read;
 mod refit;
 mod sample;
@@ -221,7 +222,12 @@ impl Fitted {
 ///
 /// A baseline must be complete: [`CsvOptions::allow_missing`] is ignored here, so an empty or
 /// NaN cell is an error (or, with `skip_bad_rows`, a skipped row), never a NaN in the moments.
+///
+/// A Parquet file (see [`ingest::is_parquet`]) is copied to a temporary CSV first (`parquet.rs`).
 pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
+    if ingest::is_parquet(path) {
+        return parquet::fit_parquet(path, opts);
+    }
     let mut owned = opts.clone();
     owned.csv.allow_missing = false;
     let opts = &owned;

@@ -5,6 +5,7 @@
 
 pub mod evaluate;
 pub mod fit_report;
+pub mod fleet;
 pub mod limits;
 pub mod summary;
 pub mod train;

@@ -20,6 +20,7 @@ use std::fmt::Write as _;
 use anyhow::Result;
 
 mod contributions;
+pub mod fleet;
 mod heatmap;
 mod histogram;
 mod html;

@@ -178,6 +178,117 @@ pub enum IngestError {
         /// How far it lies, and what to do.
         detail: String,
     },
+    /// A Parquet file's footer or schema could not be read.
+    #[error("{file}: not a readable Parquet file: {message}")]
+    ParquetUnreadable {
+        /// The file.
+        file: String,
+        /// The `parquet` crate's words.
+        message: String,
+    },
+    /// A row group of a Parquet file could not be decoded.
+    #[error("{file}: row group {group}: the data cannot be decoded (a damaged or truncated file?): {message}")]
+    ParquetCorrupt {
+        /// The file.
+        file: String,
+        /// 1-based row group.
+        group: usize,
+        /// The `parquet` crate's words.
+        message: String,
+    },
+    /// A Parquet file is compressed with a codec this build does not read.
+    #[error(
+        "{file}: the data is compressed with a codec this build does not read (only uncompressed \
+         and Snappy-compressed Parquet is read; rewrite it with one of those): {message}"
+    )]
+    ParquetCodec {
+        /// The file.
+        file: String,
+        /// The `parquet` crate's words.
+        message: String,
+    },
+    /// The column roles do not fit a Parquet file's columns (a missing or doubly used column).
+    #[error("{file}: {message}")]
+    ParquetSchema {
+        /// The file.
+        file: String,
+        /// What is wrong.
+        message: String,
+    },
+    /// A Parquet column to be used is nested or repeated.
+    #[error("{file}: column `{column}` is nested or repeated; only flat columns can be read")]
+    ParquetNested {
+        /// The file.
+        file: String,
+        /// The column's dotted path.
+        column: String,
+    },
+    /// A Parquet feature column does not hold numbers.
+    #[error(
+        "{file}: column `{column}` holds {found} values, but a feature column must hold numbers \
+         (DOUBLE, FLOAT, INT32 or INT64); leave it out with the column option"
+    )]
+    ParquetColumnType {
+        /// The file.
+        file: String,
+        /// The column.
+        column: String,
+        /// Its physical type.
+        found: String,
+    },
+    /// A Parquet file has no rows.
+    #[error("{file}: the file has no data rows")]
+    ParquetNoRows {
+        /// The file.
+        file: String,
+    },
+    /// A Parquet feature cell is null.
+    #[error("{file}: row {row}: column `{column}` is null (no reading)")]
+    ParquetNull {
+        /// The file.
+        file: String,
+        /// 1-based row.
+        row: u64,
+        /// The column.
+        column: String,
+    },
+    /// A Parquet feature cell is NaN or infinite where a finite number is needed.
+    #[error("{file}: row {row}: column `{column}`: `{value}` is not a finite number")]
+    ParquetNotFinite {
+        /// The file.
+        file: String,
+        /// 1-based row.
+        row: u64,
+        /// The column.
+        column: String,
+        /// The value.
+        value: String,
+    },
+    /// A Parquet label cell is none of the accepted values.
+    #[error(
+        "{file}: row {row}: column `{column}`: `{value}` is not a label \
+         (use 0/false/normal/ok or 1/true/anomaly/fault)"
+    )]
+    ParquetBadLabel {
+        /// The file.
+        file: String,
+        /// 1-based row.
+        row: u64,
+        /// The column.
+        column: String,
+        /// The cell.
+        value: String,
+    },
+    /// A row of a fleet log has no machine id (`fit --by`).
+    #[error("{file}{at}: column `{column}` is empty, so the row belongs to no machine")]
+    NoMachine {
+        /// The file.
+        file: String,
+        /// `:LINE` for a CSV, `: row ROW` for Parquet.
+        at: String,
+        /// The machine column.
+        column: String,
+    },
     /// Reading a row failed for a reason of the CSV layer (for instance an I/O error mid-file).
     #[error("{file}:{line}: {message}")]
     Record {

@@ -119,84 +119,11 @@ impl Layout {
                 }
             }
         }
-        let available = || names.join(", ");
-        let find = |role: &'static str, name: &str| {
-            names
-                .iter()
-                .position(|n| n == name)
-                .ok_or_else(|| IngestError::MissingColumn {
-                    file: file.clone(),
-                    role,
-                    name: name.to_string(),
-                    available: available(),
-                })
-        };
-        let label_field = opts
-            .label
-            .as_deref()
-            .map(|l| find("label", l))
-            .transpose()?;
-        let explicit_ts = opts
-            .timestamp
-            .as_deref()
-            .map(|t| find("timestamp", t))
-            .transpose()?;
-        let chosen: Option<Vec<usize>> = opts
-            .columns
-            .as_ref()
-            .map(|cols| cols.iter().map(|c| find("feature", c)).collect())
-            .transpose()?;
-        let timestamp_field = explicit_ts.or_else(|| {
-            names.iter().enumerate().position(|(i, n)| {
-                TIMESTAMP_NAMES.iter().any(|t| n.eq_ignore_ascii_case(t))
-                    && Some(i) != label_field
-                    && chosen.as_ref().is_none_or(|c| !c.contains(&i))
-            })
-        });
-        let conflict = |i: usize, a, b| IngestError::ConflictingRoles {
-            file: file.clone(),
-            name: names[i].clone(),
-            a,
-            b,
-        };
-        if let (Some(t), Some(l)) = (timestamp_field, label_field) {
-            if t == l {
-                return Err(conflict(t, "timestamp", "label"));
-            }
-        }
-        let feature_fields = match chosen {
-            Some(c) => {
-                for (k, &i) in c.iter().enumerate() {
-                    if Some(i) == label_field {
-                        return Err(conflict(i, "feature", "label"));
-                    }
-                    if Some(i) == timestamp_field {
-                        return Err(conflict(i, "feature", "timestamp"));
-                    }
-                    if let Some(j) = c[..k].iter().position(|&x| x == i) {
-                        return Err(IngestError::RepeatedSelection {
-                            file,
-                            name: names[i].clone(),
-                            first: j + 1,
-                            second: k + 1,
-                        });
-                    }
-                }
-                c
-            }
-            None => {
-                let f: Vec<usize> = (0..names.len())
-                    .filter(|i| Some(*i) != label_field && Some(*i) != timestamp_field)
-                    .collect();
-                if let Some(&i) = f.iter().find(|&&i| names[i].is_empty()) {
-                    return Err(IngestError::UnnamedColumn { file, index: i + 1 });
-                }
-                f
-            }
-        };
-        if feature_fields.is_empty() {
-            return Err(IngestError::NoFeatures { file });
-        }
+        let Roles {
+            feature_fields,
+            timestamp_field,
+            label_field,
+        } = resolve_roles(&file, &names, opts)?;
         Ok(Layout {
             features: feature_fields.iter().map(|&i| names[i].clone()).collect(),
             file,
@@ -209,6 +136,113 @@ impl Layout {
             file_len,
         })
     }
+}
+
+/// Which column (0-based, in `names`) plays which role.
+pub(super) struct Roles {
+    /// For each feature, its column.
+    pub(super) feature_fields: Vec<usize>,
+    /// The timestamp's column, if any.
+    pub(super) timestamp_field: Option<usize>,
+    /// The label's column, if any.
+    pub(super) label_field: Option<usize>,
+}
+
+/// Resolve the column roles of `opts` against the column `names` of `file` (the CSV header or a
+/// Parquet schema): the same rules for both.
+pub(super) fn resolve_roles(
+    file: &str,
+    names: &[String],
+    opts: &CsvOptions,
+) -> Result<Roles, IngestError> {
+    let available = || names.join(", ");
+    let find = |role: &'static str, name: &str| {
+        names
+            .iter()
+            .position(|n| n == name)
+            .ok_or_else(|| IngestError::MissingColumn {
+                file: file.to_string(),
+                role,
+                name: name.to_string(),
+                available: available(),
+            })
+    };
+    let label_field = opts
+        .label
+        .as_deref()
+        .map(|l| find("label", l))
+        .transpose()?;
+    let explicit_ts = opts
+        .timestamp
+        .as_deref()
+        .map(|t| find("timestamp", t))
+        .transpose()?;
+    let chosen: Option<Vec<usize>> = opts
+        .columns
+        .as_ref()
+        .map(|cols| cols.iter().map(|c| find("feature", c)).collect())
+        .transpose()?;
+    let timestamp_field = explicit_ts.or_else(|| {
+        names.iter().enumerate().position(|(i, n)| {
+            TIMESTAMP_NAMES.iter().any(|t| n.eq_ignore_ascii_case(t))
+                && Some(i) != label_field
+                && chosen.as_ref().is_none_or(|c| !c.contains(&i))
+        })
+    });
+    let conflict = |i: usize, a, b| IngestError::ConflictingRoles {
+        file: file.to_string(),
+        name: names[i].clone(),
+        a,
+        b,
+    };
+    if let (Some(t), Some(l)) = (timestamp_field, label_field) {
+        if t == l {
+            return Err(conflict(t, "timestamp", "label"));
+        }
+    }
+    let feature_fields = match chosen {
+        Some(c) => {
+            for (k, &i) in c.iter().enumerate() {
+                if Some(i) == label_field {
+                    return Err(conflict(i, "feature", "label"));
+                }
+                if Some(i) == timestamp_field {
+                    return Err(conflict(i, "feature", "timestamp"));
+                }
+                if let Some(j) = c[..k].iter().position(|&x| x == i) {
+                    return Err(IngestError::RepeatedSelection {
+                        file: file.to_string(),
+                        name: names[i].clone(),
+                        first: j + 1,
+                        second: k + 1,
+                    });
+                }
+            }
+            c
+        }
+        None => {
+            let f: Vec<usize> = (0..names.len())
+                .filter(|i| Some(*i) != label_field && Some(*i) != timestamp_field)
+                .collect();
+            if let Some(&i) = f.iter().find(|&&i| names[i].is_empty()) {
+                return Err(IngestError::UnnamedColumn {
+                    file: file.to_string(),
+                    index: i + 1,
+                });
+            }
+            f
+        }
+    };
+    if feature_fields.is_empty() {
+        return Err(IngestError::NoFeatures {
+            file: file.to_string(),
+        });
+    }
+    Ok(Roles {
+        feature_fields,
+        timestamp_field,
+        label_field,
+    })
 }
 
 pub(super) fn detect_delimiter(line: &[u8]) -> u8 {

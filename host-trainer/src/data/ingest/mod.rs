@@ -1,4 +1,4 @@
-//! Streaming CSV reading, with errors that name file, line, column and value.
+//! Streaming CSV and Parquet reading, with errors that name file, line (or row), column and value.
 //!
 //! A file has one header row of column names, then one reading a row. The delimiter is `,`, `;` or
 //! tab; when [`CsvOptions::delimiter`] is `None` it is the one of the three that occurs most often
@@ -18,6 +18,9 @@
 //! [`Layout`] and [`Reader::range`] let a caller read disjoint byte ranges of one file in
 //! parallel with the same column mapping (see `fit`).
 //!
+//! [`Reader::open`] reads a Parquet file too (see the `parquet` submodule: `PAR1` at both ends
+//! of the file, one row group in memory at a time); [`Reader::range`] is for CSV only.
+//!
 //! Bad input stops the read with an [`IngestError`] unless [`CsvOptions::skip_bad_rows`] is set;
 //! then the row is dropped, counted ([`Reader::skipped`]) and the first [`KEEP_REASONS`] reasons
 //! are kept ([`Reader::skipped_reasons`]).
@@ -26,14 +29,18 @@ mod cell;
 mod error;
 mod layout;
 mod lines;
+mod parquet;
 mod reader;
+mod split;
 mod table;
 
 pub use cell::parse_label;
 pub use error::IngestError;
 pub use layout::Layout;
 pub use lines::{count_lines, nth_line_start, split_ranges};
+pub use parquet::{is_parquet, parquet_to_csv};
 pub use reader::{progress_bar, Reader, Row};
+pub use split::{split_by, Part, SplitLog, FLUSH_BYTES};
 pub use table::{read_table, Table};
 
 /// How many reasons for skipped rows a [`Reader`] keeps.

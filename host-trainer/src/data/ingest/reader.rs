@@ -7,6 +7,7 @@ use std::path::Path;
 use indicatif::{ProgressBar, ProgressStyle};
 
 use super::cell::{parse_f64, parse_label, shown, trim};
+use super::parquet::{is_parquet, ParquetRows};
 use super::{CsvOptions, IngestError, Layout, KEEP_REASONS, PROGRESS_MIN_BYTES};
 
 /// A progress bar over `len` bytes, or `None` when the input is small, stderr is not a
@@ -39,7 +40,8 @@ impl Read for Source {
     }
 }
 
-/// One data row, borrowed from the [`Reader`] until the next call.
+/// One data row, borrowed from the [`Reader`] until the next call. For a Parquet file `line` and
+/// `byte` are both the 1-based row number.
 #[derive(Clone, Copy, Debug)]
 pub struct Row<'a> {
     /// 1-based line number in the file (the header is line 1).
@@ -83,11 +85,20 @@ pub struct Reader {
     allow_missing: bool,
     skipped: u64,
     reasons: Vec<IngestError>,
+    /// Set when the file is Parquet: then every row comes from here.
+    parquet: Option<Box<ParquetRows>>,
 }
 
 impl Reader {
     /// Open `path`, read its header, and get ready to stream its data rows.
+    /// A Parquet file (`PAR1` at both ends) is read by row group instead.
     pub fn open(path: &Path, opts: &CsvOptions) -> Result<Reader, IngestError> {
+        if is_parquet(path) {
+            let (rows, layout) = ParquetRows::open(path, opts)?;
+            let mut r = Reader::range(path, &layout, opts, 0, 0, 1)?;
+            r.parquet = Some(Box::new(rows));
+            return Ok(r);
+        }
         let layout = Layout::read(path, opts)?;
         let pb = progress_bar(layout.file_len, opts.quiet);
         if let Some(p) = &pb {
@@ -138,6 +149,7 @@ impl Reader {
             allow_missing: opts.allow_missing,
             skipped: 0,
             reasons: Vec::new(),
+            parquet: None,
         })
     }
 
@@ -163,16 +175,25 @@ impl Reader {
 
     /// How many rows were dropped under [`CsvOptions::skip_bad_rows`].
     pub fn skipped(&self) -> u64 {
+        if let Some(p) = &self.parquet {
+            return p.skipped();
+        }
         self.skipped
     }
 
     /// Why the first few ([`KEEP_REASONS`]) dropped rows were dropped.
     pub fn skipped_reasons(&self) -> &[IngestError] {
+        if let Some(p) = &self.parquet {
+            return p.reasons();
+        }
         &self.reasons
     }
 
     /// Move the kept reasons out (leaving none).
     pub fn take_skipped_reasons(&mut self) -> Vec<IngestError> {
+        if let Some(p) = &mut self.parquet {
+            return p.take_reasons();
+        }
         std::mem::take(&mut self.reasons)
     }
 
@@ -184,6 +205,9 @@ impl Reader {
     /// A row the caller found bad (for instance a value its own rules refuse): with
     /// `skip_bad_rows` it is counted and `Ok` is returned, otherwise the error is.
     pub fn skip_or_fail(&mut self, err: IngestError) -> Result<(), IngestError> {
+        if let Some(p) = &mut self.parquet {
+            return p.skip_or_fail(err);
+        }
         if !self.skip_bad_rows {
             return Err(err);
         }
@@ -196,6 +220,13 @@ impl Reader {
 
     /// The next good row, or `None` at the end of the file (or range).
     pub fn next_row(&mut self) -> Result<Option<Row<'_>>, IngestError> {
+        if self.parquet.is_some() {
+            return self.parquet.as_mut().map_or(Ok(None), |p| p.next_row());
+        }
+        self.next_csv_row()
+    }
+
+    fn next_csv_row(&mut self) -> Result<Option<Row<'_>>, IngestError> {
         loop {
             self.buf.clear();
             let n = io::BufRead::read_until(&mut self.src, b'\n', &mut self.buf).map_err(|e| {
