@@ -5,7 +5,7 @@ use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
 
-use crate::commands::{demo, evaluate, export, fit, inspect, replay};
+use crate::commands::{common, demo, evaluate, export, fit, inspect, replay};
 
 /// Train, threshold, check and explain multivariate Gaussian anomaly models for sensor nodes.
 ///
@@ -83,6 +83,10 @@ pub fn main() -> ExitCode {
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,
+        Err(e) if e.downcast_ref::<common::Partial>().is_some() => {
+            eprintln!("warning: {e}");
+            ExitCode::from(common::PARTIAL_EXIT)
+        }
         Err(e) => {
             eprintln!("error: {e}");
             for cause in e.chain().skip(1) {

@@ -11,6 +11,22 @@ use crate::data::output;
 use crate::data::paths::{refuse_clashes, Role};
 use crate::device::dims::{decode_file, AnyModel};
 
+/// A run that wrote its outputs but not for every input: `fit --by` with some machines failed.
+/// The command line exits with [`PARTIAL_EXIT`], so that a script cannot take it for a full success.
+#[derive(Debug)]
+pub struct Partial(pub String);
+
+impl std::fmt::Display for Partial {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(&self.0)
+    }
+}
+
+impl std::error::Error for Partial {}
+
+/// Exit status of a [`Partial`] run (1 is a failed run, which wrote nothing).
+pub const PARTIAL_EXIT: u8 = 3;
+
 /// How the CSV is read.
 #[derive(Debug, Clone, Args)]
 pub struct CsvArgs {

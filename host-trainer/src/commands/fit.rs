@@ -263,5 +263,12 @@ fn run_fleet(a: &FitArgs, by: &str) -> Result<()> {
             a.out.display()
         );
     }
-    Ok(())
+    match run.failed() {
+        0 => Ok(()),
+        n => Err(super::common::Partial(format!(
+            "{n} of {} machines could not be fitted (listed in fleet.csv); the others were written",
+            run.machines.len()
+        ))
+        .into()),
+    }
 }
