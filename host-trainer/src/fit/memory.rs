@@ -442,6 +442,8 @@ pub struct Partial {
     extremes: Extremes,
     /// `(hash of the raw values, raw values)`, at most `2 · SAMPLE_ROWS` before a compaction.
     sample: Vec<(u64, Vec<f64>)>,
+    /// Keys at or above this cannot be among the smallest `SAMPLE_ROWS` (as in [`Sample`]).
+    top: u64,
     skipped: u64,
 }
 
@@ -473,6 +475,7 @@ impl Partial {
             lag: vec![Lag1::new(p)],
             extremes: Extremes::new(p),
             sample: Vec::new(),
+            top: u64::MAX,
             skipped: 0,
         })
     }
@@ -521,7 +524,7 @@ impl Partial {
             }
         }
         let mut block = Vec::with_capacity(BLOCK_ROWS * p);
-        let lag = self.lag.last_mut().expect("a current stretch");
+        let mut lag = self.lag.pop().expect("a current stretch");
         for (r, raw) in values.chunks_exact(p).enumerate() {
             if bad_row(name, &self.features, r as u64, raw, self.log_mask).is_some() {
                 self.skipped += 1;
@@ -536,26 +539,40 @@ impl Partial {
             }
             lag.push(&block[at..]);
             let h = row_hash(raw);
-            self.sample.push((h, raw.to_vec()));
+            if sample_key(h) < self.top {
+                self.sample.push((h, raw.to_vec()));
+                if self.sample.len() >= 2 * SAMPLE_ROWS {
+                    self.compact(SAMPLE_ROWS);
+                }
+            }
             if block.len() == BLOCK_ROWS * p {
                 self.extremes.offer_block(&block);
                 self.moments.push_block(&block);
                 block.clear();
             }
         }
+        self.lag.push(lag);
         self.extremes.offer_block(&block);
         self.moments.push_block(&block);
-        self.compact(2 * SAMPLE_ROWS);
         Ok(())
     }
 
-    /// Keep the `SAMPLE_ROWS` smallest keys once more than `limit` candidates have gathered.
+    /// Keep the `SAMPLE_ROWS` smallest keys once more than `limit` candidates have gathered, and
+    /// lower the cut-off to the largest key kept.
     fn compact(&mut self, limit: usize) {
         if self.sample.len() > limit {
             self.sample.sort_unstable_by_key(|(h, v)| {
                 (sample_key(*h), *h, v.first().map(|x| x.to_bits()))
             });
             self.sample.truncate(SAMPLE_ROWS);
+        }
+        if self.sample.len() >= SAMPLE_ROWS {
+            self.top = self
+                .sample
+                .iter()
+                .map(|(h, _)| sample_key(*h))
+                .max()
+                .unwrap_or(u64::MAX);
         }
     }
 
@@ -581,8 +598,14 @@ impl Partial {
             .extend(other.lag.iter().filter(|l| !l.is_empty()).cloned());
         self.lag.push(Lag1::new(p));
         self.extremes.merge(&other.extremes);
-        self.sample.extend(other.sample.iter().cloned());
-        self.compact(2 * SAMPLE_ROWS);
+        for (h, row) in &other.sample {
+            if sample_key(*h) < self.top {
+                self.sample.push((*h, row.clone()));
+                if self.sample.len() >= 2 * SAMPLE_ROWS {
+                    self.compact(SAMPLE_ROWS);
+                }
+            }
+        }
         self.skipped += other.skipped;
         Ok(())
     }
@@ -726,8 +749,10 @@ impl Partial {
             lag,
             extremes,
             sample,
+            top: u64::MAX,
             skipped,
         };
+        s.compact(SAMPLE_ROWS);
         // The names and the log mask go through the same checks as a new partial's.
         let check = Partial::new(features.clone(), &[])?;
         ensure!(
