@@ -447,10 +447,16 @@ pub struct Partial {
     skipped: u64,
 }
 
-/// The hash of a row's bits that keys the sample of a [`Partial`].
+/// The hash of a row's bits that keys the sample of a [`Partial`]: a multiply-rotate fold of the
+/// values' bits, finished by SplitMix64's mixer (part of byte-form version 1: partials hashed
+/// another way would not sample the same rows).
 fn row_hash(raw: &[f64]) -> u64 {
-    raw.iter()
-        .fold(0x243f_6a88_85a3_08d3u64, |h, v| mix(h ^ v.to_bits()))
+    let h = raw.iter().fold(0x243f_6a88_85a3_08d3u64, |h, v| {
+        (h ^ v.to_bits())
+            .wrapping_mul(0x9e37_79b9_7f4a_7c15)
+            .rotate_left(29)
+    });
+    mix(h)
 }
 
 /// The sample key of a hash, as [`Sample`] computes it.
@@ -526,7 +532,10 @@ impl Partial {
         let mut block = Vec::with_capacity(BLOCK_ROWS * p);
         let mut lag = self.lag.pop().expect("a current stretch");
         for (r, raw) in values.chunks_exact(p).enumerate() {
-            if bad_row(name, &self.features, r as u64, raw, self.log_mask).is_some() {
+            // Without `skip_bad_rows` every row was checked above.
+            if skip_bad_rows
+                && bad_row(name, &self.features, r as u64, raw, self.log_mask).is_some()
+            {
                 self.skipped += 1;
                 continue;
             }
