@@ -20,9 +20,10 @@ use ellipsoid_trainer::device::dims::{decode_any, AnyModel};
 use ellipsoid_trainer::device::replay::{to_device, Replayer};
 use ellipsoid_trainer::fit::memory::{fit_partial, fit_rows, Partial, Table};
 use ellipsoid_trainer::fit::Shrinkage;
+use ellipsoid_trainer::pipeline::fit_report::report_data;
 use ellipsoid_trainer::pipeline::limits::LimitSpec;
 use ellipsoid_trainer::pipeline::summary::{summary_json, summary_text};
-use ellipsoid_trainer::pipeline::train::{train_with, TrainSpec, Trained};
+use ellipsoid_trainer::pipeline::train::{check_output_paths, train_with, TrainSpec, Trained};
 use ellipsoid_trainer::stats::promise::SIM_SEED;
 use ellipsoid_trainer::stats::threshold::Method;
 use numpy::{
@@ -122,6 +123,7 @@ fn spec_from(source: &str, opts: Option<&Bound<'_, PyDict>>) -> PyResult<TrainSp
             "sequence" => s.sequence = v.extract()?,
             "trained_at" => s.trained_at = Some(v.extract()?),
             "skip_bad_rows" => s.csv.skip_bad_rows = v.extract()?,
+            "report" => {}
             other => {
                 return Err(PyTypeError::new_err(format!(
                     "unknown fit option `{other}`"
@@ -150,14 +152,21 @@ struct Model {
     features: Vec<String>,
     summary: String,
     summary_json: String,
+    report_html: String,
     model: Box<dyn AnyModel>,
 }
 
 impl Model {
-    fn from_trained(t: Trained) -> Result<Self> {
+    fn from_trained(t: Trained, report: bool) -> Result<Self> {
         let mut card = Vec::new();
         t.card.write_to(&mut card)?;
+        let report_html = if report {
+            ellipsoid_trainer::report::render(&report_data(&t))?
+        } else {
+            String::new()
+        };
         Ok(Model {
+            report_html,
             card: String::from_utf8(card)?,
             features: t.fitted.features.clone(),
             summary: summary_text(&t),
@@ -231,19 +240,25 @@ impl Model {
         &self.summary_json
     }
 
-    /// Write the blob to `path` and the card beside it (`.json`), both or neither.
-    fn save(&self, path: PathBuf) -> PyResult<()> {
-        let card_path = ModelCard::path_for(&path);
-        if card_path == path {
-            return Err(PyValueError::new_err(format!(
-                "{} would be overwritten by its own model card: give the blob another extension, such as .blob",
-                path.display()
-            )));
-        }
+    /// The HTML report `ellipsoid fit --report` writes (empty unless the fit asked for it).
+    #[getter]
+    fn report_html(&self) -> &str {
+        &self.report_html
+    }
+
+    /// Write the blob to `path`, the card beside it (`.json`) and the report, all or nothing.
+    #[pyo3(signature = (path, report=None))]
+    fn save(&self, path: PathBuf, report: Option<PathBuf>) -> PyResult<()> {
+        // The command's checks: the card may not be the blob, no two outputs may be one file.
+        check_output_paths(&path, report.as_deref(), &[]).map_err(err)?;
         let mut out = Outputs::new();
         out.stage_bytes(&path, &self.blob).map_err(err)?;
-        out.stage_bytes(&card_path, self.card.as_bytes())
+        out.stage_bytes(&ModelCard::path_for(&path), self.card.as_bytes())
             .map_err(err)?;
+        if let Some(r) = &report {
+            out.stage_bytes(r, self.report_html.as_bytes())
+                .map_err(err)?;
+        }
         out.commit().map_err(err)
     }
 
@@ -350,6 +365,14 @@ impl ReplayOut {
     }
 }
 
+/// Whether the options ask for the HTML report.
+fn wants_report(opts: Option<&Bound<'_, PyDict>>) -> PyResult<bool> {
+    match opts.map(|o| o.get_item("report")).transpose()?.flatten() {
+        Some(v) if !v.is_none() => v.extract(),
+        _ => Ok(false),
+    }
+}
+
 /// Fit rows (time order) with the options of `ellipsoid fit`; `source` names them in messages and
 /// in the card.
 #[pyfunction]
@@ -369,6 +392,7 @@ fn fit_rows_py(
         )));
     }
     let spec = spec_from(&source, options)?;
+    let report = wants_report(options)?;
     py.detach(|| {
         let t = train_with(&spec, |opts| {
             fit_rows(
@@ -380,7 +404,7 @@ fn fit_rows_py(
                 opts,
             )
         })?;
-        Model::from_trained(t)
+        Model::from_trained(t, report)
     })
     .map_err(err)
 }
@@ -401,10 +425,11 @@ fn fit_moments_py(
              keep no rows: choose hotelling, confidence, chi-square or f1"
         )));
     }
+    let report = wants_report(options)?;
     let part = &moments.0;
     py.detach(|| {
         let t = train_with(&spec, |opts| fit_partial(&source, part, opts))?;
-        Model::from_trained(t)
+        Model::from_trained(t, report)
     })
     .map_err(err)
 }
@@ -436,6 +461,7 @@ fn load_py(path: PathBuf) -> PyResult<Model> {
         features: loaded.features,
         summary: String::new(),
         summary_json: String::new(),
+        report_html: String::new(),
         model: loaded.model,
     })
 }
@@ -473,6 +499,7 @@ fn model_from_parts(
         card,
         summary,
         summary_json,
+        report_html: String::new(),
         model,
     })
 }

@@ -74,6 +74,16 @@ def test_the_summary_is_the_commands(tmp_path: pathlib.Path, ellipsoid_bin: str)
     as_json = run_cli(ellipsoid_bin, "fit", str(csv_path), "--out", str(tmp_path / "m.blob"), "--threads", "1",
                       "--trained-at", str(TRAINED_AT), "--quiet", "--json")
     assert json.loads(as_json) == model.summary_dict()
+    # The HTML report too, and all three files written together.
+    run_cli(ellipsoid_bin, "fit", str(csv_path), "--out", str(tmp_path / "m.blob"), "--threads", "1",
+            "--trained-at", str(TRAINED_AT), "--quiet", "--report", str(tmp_path / "cli.html"))
+    with_report = ellipsoid.fit(x, features=FEATURES, source=str(csv_path), trained_at=TRAINED_AT, report=True)
+    assert with_report.report_html == (tmp_path / "cli.html").read_text()
+    with_report.save(str(tmp_path / "py.blob"), report=str(tmp_path / "py.html"))
+    assert (tmp_path / "py.html").read_text() == with_report.report_html
+    assert (tmp_path / "py.blob").read_bytes() == (tmp_path / "m.blob").read_bytes()
+    with pytest.raises(ValueError, match="no report"):
+        model.save(str(tmp_path / "x.blob"), report=str(tmp_path / "x.html"))
 
 
 def read_replay_csv(path: pathlib.Path):

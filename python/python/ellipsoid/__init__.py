@@ -143,14 +143,18 @@ def fit(
     sequence: int = 1,
     trained_at: Optional[int] = None,
     skip_bad_rows: bool = False,
+    report: bool = False,
 ) -> "Model":
     """Fit a model of healthy operation to ``data`` (rows in time order), as ``ellipsoid fit`` does.
 
     Every option is the command line's of the same name (``--holdout`` is ``holdout=`` and so on;
-    ``ellipsoid fit --help`` explains each). The hold-out is the last ``holdout`` share of the rows.
+    ``ellipsoid fit --help`` explains each; ``report=True`` keeps the page ``--report`` writes in
+    :attr:`Model.report_html`). The hold-out is the last ``holdout`` share of the rows.
     ``source`` names the data in messages and is the card's ``trained_on``. ``validation`` is a
     labelled CSV file, as on the command line. Bad input (a NaN, a constant or collinear feature, a
-    gross outlier) raises ``ValueError`` naming the row index (0-based) and column.
+    gross outlier) raises ``ValueError`` naming the row index (0-based) and column; where the
+    command's summary names file lines (rows set aside, hold-out alarms), ``summary`` and
+    ``summary_dict()`` give these row indices.
 
     The result's ``blob`` and ``card`` are the bytes ``ellipsoid fit --threads 1 --trained-at T``
     writes for the same rows written as CSV (``trained_at=T``; without it the blob holds the time of
@@ -167,7 +171,7 @@ def fit(
         strict_baseline=strict_baseline, alarms_per_day=alarms_per_day, rate_hz=rate_hz,
         alpha=alpha, validation=validation, label_column=label_column, raise_after=raise_after,
         clear_after=clear_after, clear_fraction=clear_fraction, latch=latch, model_id=model_id,
-        sequence=sequence, trained_at=trained_at, skip_bad_rows=skip_bad_rows,
+        sequence=sequence, trained_at=trained_at, skip_bad_rows=skip_bad_rows, report=report,
     )
     return Model._wrap(_ellipsoid.fit_rows_py(arr, names, source, opts))
 
@@ -198,6 +202,7 @@ def fit_moments(
     trained_at: Optional[int] = None,
     robust: bool = False,
     holdout: float = 0.0,
+    report: bool = False,
 ) -> "Model":
     """Fit merged :class:`Moments`: the same model as :func:`fit` on all their rows with
     ``holdout=0`` (mean and covariance to rounding error).
@@ -218,7 +223,7 @@ def fit_moments(
         alarms_per_day=alarms_per_day, rate_hz=rate_hz, alpha=alpha, validation=validation,
         label_column=label_column, raise_after=raise_after, clear_after=clear_after,
         clear_fraction=clear_fraction, latch=latch, model_id=model_id, sequence=sequence,
-        trained_at=trained_at, log=list(moments.log_features),
+        trained_at=trained_at, log=list(moments.log_features), report=report,
     )
     return Model._wrap(_ellipsoid.fit_moments_py(moments._p, source, opts))
 
@@ -290,9 +295,17 @@ class Model:
         text = self._m.summary_json
         return json.loads(text) if text else {}
 
-    def save(self, path: str) -> None:
-        """Write the blob to ``path`` and the card beside it (``.json``): both or neither."""
-        self._m.save(str(path))
+    @property
+    def report_html(self) -> str:
+        """The HTML report of ``ellipsoid fit --report`` (empty unless fitted with ``report=True``)."""
+        return self._m.report_html
+
+    def save(self, path: str, report: Optional[str] = None) -> None:
+        """Write the blob to ``path`` and the card beside it (``.json``), and the HTML report to
+        ``report`` if given: all or nothing, as ``ellipsoid fit`` writes them."""
+        if report is not None and not self.report_html:
+            raise ValueError("no report to write: fit with report=True")
+        self._m.save(str(path), None if report is None else str(report))
 
     def score(self, data: Any, *, timestamp: Optional[str] = None) -> np.ndarray:
         """The core's ``float32`` d² of each row (data frames matched to the features by name),
