@@ -41,6 +41,7 @@ use crate::stats::moments::correlation_of;
 
 mod check;
 mod estimate;
+pub mod memory;
 mod outliers;
 mod parquet;
 mod read;

@@ -282,6 +282,15 @@ fn derived_id(f: &Fitted) -> u32 {
 
 /// Fit, choose the threshold, build the blob, check the hold-out. Writes nothing.
 pub fn train(a: &TrainSpec) -> Result<Trained> {
+    train_with(a, |opts| fit_file(&a.baseline, opts))
+}
+
+/// [`train`] with another fit than the file's (rows in memory, merged partial moments:
+/// [`crate::fit::memory`]); `a.baseline` then only names the data in messages and in the card.
+pub fn train_with(
+    a: &TrainSpec,
+    fit: impl FnOnce(&FitOptions) -> Result<Fitted>,
+) -> Result<Trained> {
     anyhow::ensure!(
         (0.0..1.0).contains(&a.holdout),
         "--holdout must be a fraction in [0, 1), not {}",
@@ -315,7 +324,7 @@ pub fn train(a: &TrainSpec) -> Result<Trained> {
             .threads
             .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get())),
     };
-    let fitted = fit_file(&a.baseline, &opts)?;
+    let fitted = fit(&opts)?;
     let alpha = target.alpha();
     let meta = ModelMeta {
         model_id: a.model_id.unwrap_or_else(|| derived_id(&fitted)),

@@ -92,6 +92,73 @@ impl Lag1 {
     }
 }
 
+/// The state of a [`Lag1`] as plain numbers (see [`Lag1::parts`]).
+pub struct Lag1Parts<'a> {
+    /// Pairs of consecutive rows seen.
+    pub pairs: u64,
+    /// The shift and the last row, once a row has been seen.
+    pub shift_prev: Option<(&'a [f64], &'a [f64])>,
+    /// `Σ (x_t − c)`, `Σ (x_{t−1} − c)` and `Σ (x_t − c)(x_{t−1} − c)` over the pairs.
+    pub sum_now: &'a [f64],
+    /// See `sum_now`.
+    pub sum_prev: &'a [f64],
+    /// See `sum_now`.
+    pub sum_cross: &'a [f64],
+}
+
+/// A byte form for [`Lag1`] that travels between processes (`fit::memory`'s partial moments).
+impl Lag1 {
+    /// Whether no row has been pushed.
+    pub fn is_empty(&self) -> bool {
+        self.shift.is_empty()
+    }
+
+    /// The accumulator's state.
+    pub fn parts(&self) -> Lag1Parts<'_> {
+        Lag1Parts {
+            pairs: self.pairs,
+            shift_prev: (!self.shift.is_empty()).then(|| (&self.shift[..], &self.prev[..])),
+            sum_now: &self.sum_now,
+            sum_prev: &self.sum_prev,
+            sum_cross: &self.sum_cross,
+        }
+    }
+
+    /// An accumulator from [`Lag1::parts`] of `p` features.
+    ///
+    /// # Panics
+    /// If a vector's length is not `p`.
+    pub fn from_parts(
+        p: usize,
+        pairs: u64,
+        shift_prev: Option<(Vec<f64>, Vec<f64>)>,
+        sum_now: Vec<f64>,
+        sum_prev: Vec<f64>,
+        sum_cross: Vec<f64>,
+    ) -> Self {
+        assert!(
+            sum_now.len() == p && sum_prev.len() == p && sum_cross.len() == p,
+            "lag-1 parts of unequal sizes"
+        );
+        let (shift, prev) = match shift_prev {
+            Some((s, v)) => {
+                assert!(s.len() == p && v.len() == p, "lag-1 parts of unequal sizes");
+                (s, v)
+            }
+            None => (Vec::new(), vec![0.0; p]),
+        };
+        Lag1 {
+            p,
+            shift,
+            prev,
+            pairs,
+            sum_now,
+            sum_prev,
+            sum_cross,
+        }
+    }
+}
+
 impl Lag1Set {
     /// Add one stretch (a reader thread's range).
     pub fn add(&mut self, part: Lag1) {

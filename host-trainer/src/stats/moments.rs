@@ -272,6 +272,39 @@ impl Moments {
     }
 }
 
+/// The state of [`Moments`] as plain numbers, for a byte form that travels between processes
+/// (`fit::memory`'s partial moments).
+impl Moments {
+    /// `(n, shift, mean of x − shift, co-moment)`; the co-moment is row-major `p × p` with only
+    /// its lower triangle (`j ≤ i`) used.
+    pub fn parts(&self) -> (u64, &[f64], &[f64], &[f64]) {
+        (self.n, &self.shift, &self.mean, &self.comoment)
+    }
+
+    /// Moments from [`Moments::parts`]; the upper triangle of `comoment` is cleared.
+    ///
+    /// # Panics
+    /// If the lengths are not `p`, `p` and `p × p`.
+    pub fn from_parts(n: u64, shift: Vec<f64>, mean: Vec<f64>, mut comoment: Vec<f64>) -> Self {
+        let p = mean.len();
+        assert!(
+            shift.len() == p && comoment.len() == p * p,
+            "moment parts of unequal sizes"
+        );
+        for i in 0..p {
+            for j in i + 1..p {
+                comoment[i * p + j] = 0.0;
+            }
+        }
+        let mut m = Moments::new(p);
+        m.n = n;
+        m.shift = shift;
+        m.mean = mean;
+        m.comoment = comoment;
+        m
+    }
+}
+
 /// Below this many features or rows a block's co-moment is not worth a matrix-product call.
 const GEMM_MIN: usize = 5;
 
