@@ -348,10 +348,6 @@ impl Reader<'_> {
         Ok((value, before.get(..used).unwrap_or(before)))
     }
 
-    fn float(&mut self) -> Result<f32, DecodeError> {
-        self.take().map(|(v, _)| v)
-    }
-
     /// An unsigned varint (LEB128, as postcard writes it), in its shortest form only. postcard's
     /// reader refuses a varint too long for its type or with bits beyond it, but accepts padding:
     /// `83 00` reads as 3. A varint of more than one byte is the shortest form exactly when its
@@ -364,17 +360,27 @@ impl Reader<'_> {
         }
         Ok(value)
     }
-
-    fn floats(&mut self, out: &mut [f32]) -> Result<(), DecodeError> {
-        out.iter_mut().try_for_each(|v| {
-            *v = self.float()?;
-            Ok(())
-        })
-    }
 }
 
-/// Decode and validate a blob for a model of `N` features. `bytes` must be exactly the blob.
-pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeError> {
+/// Bytes of the floats of a model of `n` features in the body: offset, scale and mean (`n` each),
+/// the lower triangle of `W` and the two thresholds.
+pub const fn floats_len(n: usize) -> usize {
+    4 * (3 * n + n * (n + 1) / 2 + 2)
+}
+
+/// A blob whose header, CRC and varints have been checked: its integer fields, and its floats
+/// still as bytes (in flash, for a blob read in place). The model rules are not yet checked.
+pub(crate) struct Body<'a> {
+    pub(crate) meta: ModelMeta,
+    pub(crate) log_mask: u32,
+    /// [`floats_len`]`(N)` bytes, from `offset[0]` to the clear threshold.
+    pub(crate) floats: &'a [u8],
+    pub(crate) policy: AlarmPolicy,
+}
+
+/// Everything of [`decode`] but the floats' values and the model rules, in the order FORMAT.md
+/// gives: header, `N`, length, CRC, body.
+pub(crate) fn read_body<const N: usize>(bytes: &[u8]) -> Result<Body<'_>, DecodeError> {
     let h = Header::parse(bytes)?;
     if N == 0 || N > MAX_FEATURES {
         return Err(DecodeError::UnsupportedDimension {
@@ -410,22 +416,14 @@ pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeErro
         trained_at: r.varint()?,
         sequence: r.varint()?,
     };
-    let mut preprocess = Preprocess::<N> {
-        log_mask: r.varint()?,
-        ..Preprocess::identity()
-    };
-    r.floats(&mut preprocess.offset)?;
-    r.floats(&mut preprocess.scale)?;
-    let mut mean = [0.0f32; N];
-    r.floats(&mut mean)?;
-    let mut w = [[0.0f32; N]; N];
-    for (i, row) in w.iter_mut().enumerate() {
-        r.floats(row.get_mut(..=i).unwrap_or(&mut []))?;
+    let log_mask = r.varint()?;
+    let n_floats = floats_len(N);
+    if r.rest.len() < n_floats {
+        return Err(DecodeError::Body);
     }
-    let thresholds = Thresholds {
-        alarm: r.float()?,
-        clear: r.float()?,
-    };
+    let (floats, rest) = r.rest.split_at(n_floats);
+    r.rest = rest;
+    r.offset += n_floats;
     let policy = AlarmPolicy {
         raise_after: r.varint()?,
         clear_after: r.varint()?,
@@ -434,13 +432,57 @@ pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeErro
     if !r.rest.is_empty() {
         return Err(DecodeError::TrailingBytes);
     }
-    let params = ModelParams {
+    Ok(Body {
         meta,
+        log_mask,
+        floats,
+        policy,
+    })
+}
+
+/// The `k`-th little-endian `f32` of `bytes` (NaN past the end, which no caller reaches: the
+/// rules refuse NaN, so a short slice could never pass for a model).
+#[inline(always)]
+pub(crate) fn f32_at(bytes: &[u8], k: usize) -> f32 {
+    match bytes.get(4 * k..4 * k + 4) {
+        Some(&[a, b, c, d]) => f32::from_le_bytes([a, b, c, d]),
+        _ => f32::NAN,
+    }
+}
+
+/// Decode and validate a blob for a model of `N` features. `bytes` must be exactly the blob.
+pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeError> {
+    let body = read_body::<N>(bytes)?;
+    let fl = body.floats;
+    let mut k = 0;
+    let mut next = || {
+        let v = f32_at(fl, k);
+        k += 1;
+        v
+    };
+    let mut preprocess = Preprocess::<N> {
+        log_mask: body.log_mask,
+        ..Preprocess::identity()
+    };
+    preprocess.offset.iter_mut().for_each(|v| *v = next());
+    preprocess.scale.iter_mut().for_each(|v| *v = next());
+    let mut mean = [0.0f32; N];
+    mean.iter_mut().for_each(|v| *v = next());
+    let mut w = [[0.0f32; N]; N];
+    for (i, row) in w.iter_mut().enumerate() {
+        row.iter_mut().take(i + 1).for_each(|v| *v = next());
+    }
+    let thresholds = Thresholds {
+        alarm: next(),
+        clear: next(),
+    };
+    let params = ModelParams {
+        meta: body.meta,
         preprocess,
         mean,
         w,
         thresholds,
-        policy,
+        policy: body.policy,
     };
     params.validate()?;
     Ok(params)

@@ -66,11 +66,13 @@
 
 pub mod alarm;
 pub mod blob;
+pub mod flash;
 pub mod model;
 pub mod params;
 
 pub use alarm::{AlarmMachine, Event, EventKind, FaultCause, Status, Step};
 pub use blob::{DecodeError, EncodeError};
+pub use flash::{tri, CompactModel, FlashModel};
 pub use model::{Explained, Model, ReadingFault, Scored, Verdict};
 pub use params::{
     AlarmPolicy, Field, ModelError, ModelMeta, ModelParams, Preprocess, Thresholds, MAX_FEATURES,

@@ -24,7 +24,7 @@
 use core::fmt::{self, Write};
 
 use ellipsoid_core::{
-    AlarmMachine, EventKind, Explained, Model, ReadingFault, Scored, Step, Verdict,
+    AlarmMachine, EventKind, Explained, FlashModel, ReadingFault, Scored, Step, Verdict,
 };
 use embedded_hal::digital::OutputPin;
 
@@ -35,14 +35,17 @@ use crate::source::ReadingSource;
 /// Score one reading. Kept out of line so that the image check for panic machinery (see the
 /// README) can find the scoring path by its symbol.
 #[inline(never)]
-pub fn score<const N: usize>(model: &Model<N>, x: &[f32; N]) -> Result<Scored, ReadingFault> {
+pub fn score<const N: usize>(
+    model: &FlashModel<'_, N>,
+    x: &[f32; N],
+) -> Result<Scored, ReadingFault> {
     model.score(x)
 }
 
 /// Score a reading and split d² per feature (only on a raised alarm). Out of line, as [`score`].
 #[inline(never)]
 pub fn explain<const N: usize>(
-    model: &Model<N>,
+    model: &FlashModel<'_, N>,
     x: &[f32; N],
 ) -> Result<Explained<N>, ReadingFault> {
     model.explain(x)
@@ -58,9 +61,12 @@ pub struct Summary {
 }
 
 /// A sensor node: a model (or none), the alarm state machine and the two lines.
+///
+/// The model is a [`FlashModel`]: a checked view of the blob in its slot (lifetime `'m`), so the
+/// node holds `4 N + 48` bytes of it (at N = 5, 72 bytes on thumbv7em), never a decoded copy.
 #[derive(Debug)]
-pub struct Node<A, F, const N: usize> {
-    model: Option<Model<N>>,
+pub struct Node<'m, A, F, const N: usize> {
+    model: Option<FlashModel<'m, N>>,
     machine: AlarmMachine,
     alarm: Line<A>,
     fault: Line<F>,
@@ -79,10 +85,10 @@ impl fmt::Display for Cause {
     }
 }
 
-impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
+impl<'m, A: OutputPin, F: OutputPin, const N: usize> Node<'m, A, F, N> {
     /// Check the slots, take the newest valid model, and drive both lines to their first levels:
     /// alarm off, and fault on if no slot holds a valid model. Reports every slot and pin.
-    pub fn boot(slots: &[Slot<'_>], alarm: Line<A>, fault: Line<F>, out: &mut impl Write) -> Self {
+    pub fn boot(slots: &[Slot<'m>], alarm: Line<A>, fault: Line<F>, out: &mut impl Write) -> Self {
         let chosen = slots::choose::<N>(slots, |slot, report| {
             let _ = match report {
                 SlotReport::Valid { sequence, model_id } => writeln!(
@@ -122,7 +128,7 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
     }
 
     /// The model in use, if any.
-    pub const fn model(&self) -> Option<&Model<N>> {
+    pub const fn model(&self) -> Option<&FlashModel<'m, N>> {
         self.model.as_ref()
     }
 

@@ -7,7 +7,7 @@
 
 use core::fmt;
 
-use ellipsoid_core::{blob, DecodeError, Model};
+use ellipsoid_core::{blob, DecodeError, FlashModel};
 
 /// A named model slot: its bytes as mapped in memory.
 #[derive(Clone, Copy, Debug)]
@@ -50,12 +50,13 @@ impl fmt::Display for SlotError {
 
 impl core::error::Error for SlotError {}
 
-/// Validate and compile the blob at the start of `bytes`.
+/// Validate the blob at the start of `bytes` and keep a view of it in place: the model stays in
+/// flash, and only its centre and a few scalars are kept in RAM (see `ellipsoid_core::flash`).
 ///
 /// Never panics: every access is checked. Kept out of line so that the image check for panic
 /// machinery (see the README) can find this path by its symbol.
 #[inline(never)]
-pub fn load<const N: usize>(bytes: &[u8]) -> Result<Model<N>, SlotError> {
+pub fn load<const N: usize>(bytes: &[u8]) -> Result<FlashModel<'_, N>, SlotError> {
     let head = bytes.get(..blob::HEADER_LEN).unwrap_or(bytes);
     if head.iter().all(|b| *b == 0xFF) || head.iter().all(|b| *b == 0x00) {
         return Err(SlotError::Empty);
@@ -65,7 +66,7 @@ pub fn load<const N: usize>(bytes: &[u8]) -> Result<Model<N>, SlotError> {
         stated: header.len,
         capacity: bytes.len(),
     })?;
-    Model::from_blob(blob).map_err(SlotError::Blob)
+    FlashModel::from_blob(blob).map_err(SlotError::Blob)
 }
 
 /// What [`choose`] found in one slot.
@@ -83,21 +84,21 @@ pub enum SlotReport {
 }
 
 /// The model chosen at boot.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Chosen<const N: usize> {
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Chosen<'a, const N: usize> {
     /// Index into the slots given to [`choose`].
     pub slot: usize,
-    /// The compiled model.
-    pub model: Model<N>,
+    /// The checked model, in place in its slot.
+    pub model: FlashModel<'a, N>,
 }
 
 /// Check every slot, call `report` for each, and return the valid model with the highest sequence
 /// number (the first of equals), or `None` when no slot validates.
-pub fn choose<const N: usize>(
-    slots: &[Slot<'_>],
-    mut report: impl FnMut(&Slot<'_>, &SlotReport),
-) -> Option<Chosen<N>> {
-    let mut best: Option<Chosen<N>> = None;
+pub fn choose<'a, const N: usize>(
+    slots: &[Slot<'a>],
+    mut report: impl FnMut(&Slot<'a>, &SlotReport),
+) -> Option<Chosen<'a, N>> {
+    let mut best: Option<Chosen<'a, N>> = None;
     for (i, slot) in slots.iter().enumerate() {
         match load::<N>(slot.bytes) {
             Ok(model) => {
