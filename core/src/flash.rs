@@ -21,7 +21,7 @@
 //! | form | RAM (thumbv7em, 32-bit pointers) | at N = 5 / 8 / 16 / 32 |
 //! |---|---|---|
 //! | [`crate::Model`] | `8 N² + 16 N + 48` | 328 / 688 / 2 352 / 8 752 |
-//! | [`CompactModel`] | `2 N² + 6 N + 40`, rounded up to 8 | 120 / 216 / 648 / 2 280 |
+//! | [`CompactModel`] | `2 N² + 6 N + 44`, rounded up to 8 | 128 / 224 / 656 / 2 288 |
 //! | [`FlashModel`] | `4 N + 48`, rounded up to 8 | 72 / 80 / 112 / 176 |
 //!
 //! The sizes are pinned at compile time on 32-bit targets (the image fails to build if they move)
@@ -88,8 +88,6 @@ struct Scalars {
     thresholds: Thresholds,
     policy: AlarmPolicy,
     log_mask: u32,
-    /// `Σ ln Vᵢᵢ − N/2 ln 2π`.
-    ln_norm: f32,
 }
 
 /// A validated blob, scored in place: the model lives in flash.
@@ -123,7 +121,6 @@ impl<'a, const N: usize> FlashModel<'a, N> {
         for (i, c) in center.iter_mut().enumerate() {
             *c = fold_center(f.offset(i), f.mean(i), f.scale(i));
         }
-        let ln_norm = model::ln_norm(N, (0..N).map(|i| fold_factor(f.w(i, i), f.scale(i))));
         Ok(Self {
             floats: body.floats,
             center,
@@ -132,9 +129,19 @@ impl<'a, const N: usize> FlashModel<'a, N> {
                 thresholds: f.thresholds(),
                 policy: body.policy,
                 log_mask: body.log_mask,
-                ln_norm,
             },
         })
+    }
+
+    /// `Σ ln Vᵢᵢ − N/2 ln 2π`, from the blob (only [`Self::log_density`] needs it, so boot does not
+    /// pay for the `f64` logarithm).
+    fn ln_norm(&self) -> f32 {
+        let f = Floats::<N> {
+            bytes: self.floats,
+            log_mask: self.scalars.log_mask,
+            policy: self.scalars.policy,
+        };
+        model::ln_norm(N, (0..N).map(|i| fold_factor(f.w(i, i), f.scale(i))))
     }
 
     /// Identifier, training time and sequence.
@@ -170,7 +177,7 @@ impl<'a, const N: usize> FlashModel<'a, N> {
 
     /// The log-density: the same bits as [`crate::Model::log_density`].
     pub fn log_density(&self, x: &[f32; N]) -> Result<f32, ReadingFault> {
-        model::log_density(self, self.scalars.ln_norm, x)
+        model::log_density(self, self.ln_norm(), x)
     }
 
     /// Fold the factor into RAM, for speed: a [`CompactModel`] (call with `T = tri(N)`).
@@ -189,6 +196,7 @@ impl<'a, const N: usize> FlashModel<'a, N> {
             center: self.center,
             v,
             scalars: self.scalars,
+            ln_norm: self.ln_norm(),
         }
     }
 }
@@ -211,13 +219,17 @@ impl<const N: usize> Folded<N> for FlashModel<'_, N> {
 
     #[inline(always)]
     fn row(&self, i: usize) -> impl Iterator<Item = f32> + '_ {
-        let (all, _) = self.floats.as_chunks::<4>();
-        let window = |start: usize| -> &[[u8; 4]; N] {
-            all.get(start..)
-                .and_then(|r| r.first_chunk::<N>())
-                .unwrap_or(&Self::NAN_BYTES)
-        };
-        let (w, s) = (window(Floats::<N>::W + tri(i)), window(Floats::<N>::SCALE));
+        // Slices of the row's own length (not fixed windows as in RAM): the compiler keeps this
+        // loop rolled, which is smaller in flash and, with the fold's extra load and multiply,
+        // no slower at N = 8.
+        let nan: &[[u8; 4]] = &Self::NAN_BYTES;
+        let start = 4 * (Floats::<N>::W + tri(i));
+        let w = self.floats.get(start..start + 4 * (i + 1));
+        let s = self
+            .floats
+            .get(4 * Floats::<N>::SCALE..4 * Floats::<N>::MEAN);
+        let w = w.map_or(nan, |w| w.as_chunks::<4>().0);
+        let s = s.map_or(nan, |s| s.as_chunks::<4>().0);
         w.iter()
             .zip(s)
             .map(|(w, s)| fold_factor(f32::from_le_bytes(*w), f32::from_le_bytes(*s)))
@@ -239,6 +251,8 @@ pub struct CompactModel<const N: usize, const T: usize> {
     /// `Vᵢⱼ` for `j ≤ i`, row by row.
     v: [f32; T],
     scalars: Scalars,
+    /// `Σ ln Vᵢᵢ − N/2 ln 2π`.
+    ln_norm: f32,
 }
 
 impl<const N: usize, const T: usize> CompactModel<N, T> {
@@ -285,7 +299,7 @@ impl<const N: usize, const T: usize> CompactModel<N, T> {
 
     /// The log-density: the same bits as [`crate::Model::log_density`].
     pub fn log_density(&self, x: &[f32; N]) -> Result<f32, ReadingFault> {
-        model::log_density(self, self.scalars.ln_norm, x)
+        model::log_density(self, self.ln_norm, x)
     }
 }
 
@@ -324,10 +338,10 @@ const _: () = {
     assert!(size_of::<FlashModel<'static, 5>>() == 72);
     assert!(size_of::<FlashModel<'static, 8>>() == 80);
     assert!(size_of::<FlashModel<'static, 32>>() == 176);
-    assert!(size_of::<CompactModel<5, { tri(5) }>>() == 120);
-    assert!(size_of::<CompactModel<8, { tri(8) }>>() == 216);
-    assert!(size_of::<CompactModel<16, { tri(16) }>>() == 648);
-    assert!(size_of::<CompactModel<32, { tri(32) }>>() == 2280);
+    assert!(size_of::<CompactModel<5, { tri(5) }>>() == 128);
+    assert!(size_of::<CompactModel<8, { tri(8) }>>() == 224);
+    assert!(size_of::<CompactModel<16, { tri(16) }>>() == 656);
+    assert!(size_of::<CompactModel<32, { tri(32) }>>() == 2288);
 };
 
 #[cfg(test)]
@@ -344,8 +358,8 @@ mod tests {
         assert_eq!(size_of::<FlashModel<'static, 5>>(), 72 + 8);
         assert_eq!(size_of::<FlashModel<'static, 8>>(), 80 + 8);
         assert_eq!(size_of::<FlashModel<'static, 32>>(), 176 + 8);
-        assert_eq!(size_of::<CompactModel<8, { tri(8) }>>(), 216);
-        assert_eq!(size_of::<CompactModel<16, { tri(16) }>>(), 648);
+        assert_eq!(size_of::<CompactModel<8, { tri(8) }>>(), 224);
+        assert_eq!(size_of::<CompactModel<16, { tri(16) }>>(), 656);
         // The target of the flash-resident form: at most 64 + 8 N bytes for N up to 32, on the
         // 32-bit targets (the figures above, less the 8 extra bytes of a 64-bit slice).
         for (n, size) in [(5, 72), (8, 80), (32, 176)] {

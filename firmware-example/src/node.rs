@@ -51,6 +51,13 @@ pub fn explain<const N: usize>(
     model.explain(x)
 }
 
+/// Feed one score to the alarm state machine. Out of line, as [`score`], so that the image's
+/// flash per function group (see the README) can find the alarm logic by its symbol.
+#[inline(never)]
+pub fn alarm_update(machine: &mut AlarmMachine, scored: &Result<Scored, ReadingFault>) -> Step {
+    machine.update(scored)
+}
+
 /// What a run did.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Default)]
 pub struct Summary {
@@ -158,7 +165,7 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize> Node<'m, A, F, N> {
         let model = self.model.as_ref()?;
         let index = self.machine.next_index();
         let scored = score(model, x);
-        let step = self.machine.update(&scored);
+        let step = alarm_update(&mut self.machine, &scored);
         let raised = step.events.iter().any(|e| e.kind == EventKind::Raised);
         let top = if raised {
             explain(model, x).ok().map(|e| e.top().0)
