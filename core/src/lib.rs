@@ -66,12 +66,14 @@
 
 pub mod alarm;
 pub mod blob;
+pub mod fixed;
 pub mod flash;
 pub mod model;
 pub mod params;
 
 pub use alarm::{AlarmMachine, Event, EventKind, FaultCause, Status, Step};
 pub use blob::{DecodeError, EncodeError};
+pub use fixed::{FixedModel, FixedParams};
 pub use flash::{tri, CompactModel, FlashModel};
 pub use model::{Explained, Model, ReadingFault, Scored, Verdict};
 pub use params::{

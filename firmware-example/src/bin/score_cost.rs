@@ -18,8 +18,8 @@ mod image {
 
     use cortex_m_rt::entry;
     use ellipsoid_core::{
-        blob, tri, AlarmPolicy, CompactModel, FlashModel, Model, ModelMeta, ModelParams,
-        Preprocess, ReadingFault, Scored, Thresholds,
+        blob, fixed, tri, AlarmPolicy, CompactModel, FixedModel, FlashModel, Model, ModelMeta,
+        ModelParams, Preprocess, ReadingFault, Scored, Thresholds,
     };
     use ellipsoid_firmware_example::board::mps2_an386::{self, Console, Mps2An386};
     use ellipsoid_firmware_example::measure::{paint_stack, spin, stack_depth, stack_peak, Ticks};
@@ -71,6 +71,12 @@ mod image {
         x: &[f32; N],
     ) -> Result<Scored, ReadingFault> {
         m.score(x)
+    }
+
+    /// The fixed-point model's score of an integer reading, out of line.
+    #[inline(never)]
+    fn score_fixed<const N: usize, const T: usize>(m: &FixedModel<N, T>, r: &[i32; N]) -> Scored {
+        m.score(r)
     }
 
     /// The full model's score, out of line.
@@ -148,6 +154,36 @@ mod image {
         let (c_ticks, c_per, c_stack) = time(ticks, per_tick, &compact, &xs, score_compact);
         let (f_ticks, f_per, f_stack) = time(ticks, per_tick, &flash, &xs, node::score);
         let (m_ticks, m_per, m_stack) = time(ticks, per_tick, &model, &xs, score_model);
+        // The fixed-point model of the same parameters, on the same readings as integers.
+        let fixed_ok = match fixed::quantise::<N, T>(&params).map(FixedModel::new) {
+            Ok(Ok(fm)) => {
+                let mut rs = [[0i32; N]; 4];
+                for (r, x) in rs.iter_mut().zip(&xs) {
+                    *r = fm.reading(x).unwrap_or([0; N]);
+                }
+                let t0 = ticks.now();
+                let mut acc = 0u32;
+                for k in 0..REPS {
+                    let r = black_box(&rs[(k & 3) as usize]);
+                    acc ^= score_fixed(black_box(&fm), r).d2.to_bits();
+                }
+                let t1 = ticks.now();
+                black_box(acc);
+                let per = Ticks::elapsed(t0, t1) as f32 * per_tick / REPS as f32;
+                let _ = writeln!(
+                    out,
+                    "cost_fixed n={N} reps={REPS} ticks={} instr_per_score={per:.1} loop_overhead={overhead:.1} floor_ops={floor} instr_per_op={:.2} ram_bytes={}",
+                    Ticks::elapsed(t0, t1),
+                    per / floor as f32,
+                    core::mem::size_of::<FixedModel<N, T>>(),
+                );
+                true
+            }
+            _ => {
+                let _ = writeln!(out, "cost_fixed n={N} model could not be quantised");
+                false
+            }
+        };
         // The three forms must agree to the bit, here on the device too.
         let same = xs.iter().all(|x| {
             let bits = |r: Result<Scored, ReadingFault>| r.map(|s| s.d2.to_bits());
@@ -189,7 +225,7 @@ mod image {
         if !same {
             let _ = writeln!(out, "cost n={N} the three forms disagree");
         }
-        same
+        same && fixed_ok
     }
 
     #[inline(never)]

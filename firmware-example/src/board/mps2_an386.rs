@@ -246,6 +246,11 @@ fn guard_stack(mpu: &cortex_m::peripheral::MPU) {
     extern "C" {
         static _stack_guard_start: u32;
     }
+    // MPU_TYPE.DREGION: no regions, no MPU (a Cortex-M0 build of this board's images, used for
+    // measurements, runs on a part without one).
+    if (mpu._type.read() >> 8) & 0xFF == 0 {
+        return;
+    }
     let base = addr_of!(_stack_guard_start) as u32;
     // RASR: ENABLE, SIZE = log2(256) − 1 = 7, AP = 0b000 (no access), XN.
     let rasr = 1 | (7 << 1) | (1 << 28);
