@@ -6,5 +6,6 @@
 pub mod evaluate;
 pub mod fit_report;
 pub mod limits;
+pub mod quantise;
 pub mod summary;
 pub mod train;
