@@ -65,6 +65,11 @@ replay "$BLOB_B" "$READINGS" "$W/replay-b.csv"
 
 say "2. the firmware, release"
 FW="cargo build -q --profile firmware -p ellipsoid-firmware-example"
+# --- flash-resident model: an N = 8 node image for the flash per function group (built first:
+# the builds below rebuild the node for its usual N = 5) ---
+ELLIPSOID_NODE_N=8 $FW --features mps2-an386 --target thumbv7em-none-eabihf --bin ellipsoid-node
+cp target/thumbv7em-none-eabihf/firmware/ellipsoid-node "$W/ellipsoid-node-n8"
+# --- end of the N = 8 image ---
 $FW --features mps2-an386 --target thumbv7em-none-eabihf
 $FW --no-default-features --features microbit --target thumbv6m-none-eabi
 ELF=target/thumbv7em-none-eabihf/firmware/ellipsoid-node
@@ -164,16 +169,42 @@ echo "refused, as it must be: $(grep -m1 MISMATCH "$W/pins-tampered.out")"
 # --- end of pinned scores ---------------------------------------------------------------------
 
 say "6. panic machinery on the decode and score paths"
-$TOOL reach --elf "$ELF" --roots slots::load,node::score,node::explain | tee "$W/reach.txt"
+$TOOL reach --elf "$ELF" --roots slots::load,node::score,node::explain,node::alarm_update | tee "$W/reach.txt"
+
+# --- flash-resident model: the stack guard, flash per function group ----------------------------
+# The stack sits at the bottom of RAM above an MPU guard (boards/mps2_an386/memory.x): the
+# `stack-guard` image recurses until the stack runs out, and the run must end in the HardFault
+# handler's report (a data access violation in the guard, CFSR bits DACCVIOL and MSTKERR), with the
+# .bss canary unchanged on every level it reported, and a failure status.
+say "stack guard: an overflow must fault, not corrupt"
+if timeout 60 qemu-system-arm -cpu cortex-m4 -machine mps2-an386 -nographic \
+    -semihosting-config enable=on,target=native -icount shift=0 \
+    -kernel target/thumbv7em-none-eabihf/firmware/stack-guard >"$W/stack-guard.log" 2>"$W/stack-guard.err"; then
+  fail "the stack-guard run ended with success: the overflow did not fault"
+fi
+tail -n 2 "$W/stack-guard.log"
+grep -q '^fault hard cfsr=0x000000[0-9a-f][0-9a-f] ' "$W/stack-guard.log" || fail "no HardFault report from the stack guard"
+cfsr=$(sed -n 's/^fault hard cfsr=\(0x[0-9a-f]*\).*/\1/p' "$W/stack-guard.log")
+(( (cfsr & 0x12) == 0x12 )) || fail "the fault is not a stacking access violation (CFSR $cfsr)"
+grep -q '^level ' "$W/stack-guard.log" || fail "the stack-guard image reported no level"
+if grep '^level ' "$W/stack-guard.log" | grep -qv 'canary=0xc0ffee00$'; then
+  fail "the .bss canary changed while the stack grew"
+fi
+echo "stack guard: overflow faulted (CFSR $cfsr) after $(grep -c '^level ' "$W/stack-guard.log") reports, canary intact"
+say "flash per function group, N = 8"
+$TOOL flash-groups --elf "$W/ellipsoid-node-n8" --out "$W/flash-groups.txt"
+# --- end of the flash-resident model's checks -----------------------------------------------------
 
 say "7. cost per score, and the figures"
 run cost "$COST_ELF"
 cat "$W/cost.log"
 $TOOL figures --elf "$ELF" --elf-m0 "$ELF_M0" --cost "$W/cost.log" --device "$W/slot-a.log" \
-  --compared "$W/compared.txt" --reach "$W/reach.txt" --readme firmware-example/README.md
+  --compared "$W/compared.txt" --reach "$W/reach.txt" --readme firmware-example/README.md \
+  --flash-groups "$W/flash-groups.txt"
 # The top README reports the same figures, from the same data.
 $TOOL figures --elf "$ELF" --elf-m0 "$ELF_M0" --cost "$W/cost.log" --device "$W/slot-a.log" \
-  --compared "$W/compared.txt" --reach "$W/reach.txt" --readme README.md
+  --compared "$W/compared.txt" --reach "$W/reach.txt" --readme README.md \
+  --flash-groups "$W/flash-groups.txt"
 # --- Cortex-M0: the emulated micro:bit (nRF51822, 16 KiB RAM; board file src/board/microbit.rs) --
 # The same checks on the M0 image. Its flash cannot hold the demo's reading table, so the image
 # reads it from a host file over semihosting, named by the command line's first argument.

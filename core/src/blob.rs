@@ -35,8 +35,12 @@ pub const HEADER_LEN: usize = 10;
 pub const CRC_LEN: usize = 4;
 /// Flag bit: the alarm latches.
 pub const FLAG_LATCH: u8 = 0b0000_0001;
+/// Flag bit: a fixed-point model for the integer path (`crate::fixed`), with its own body.
+pub const FLAG_FIXED: u8 = 0b0000_0010;
 
-const CRC: crc::Crc<u32> = crc::Crc::<u32>::new(&crc::CRC_32_ISO_HDLC);
+/// Bitwise, without a table: a blob is checked once, at boot, and a few hundred bytes take a few
+/// thousand instructions this way, while the 256-entry table would cost 1 KiB of flash.
+const CRC: crc::Crc<u32, crc::NoTable> = crc::Crc::<u32, crc::NoTable>::new(&crc::CRC_32_ISO_HDLC);
 
 /// The CRC the blob's last four bytes carry, over `bytes`.
 pub fn checksum(bytes: &[u8]) -> u32 {
@@ -78,7 +82,7 @@ impl Header {
         if version != VERSION {
             return Err(DecodeError::Version { found: version });
         }
-        if flags & !FLAG_LATCH != 0 {
+        if flags & !(FLAG_LATCH | FLAG_FIXED) != 0 {
             return Err(DecodeError::Flags { found: flags });
         }
         if reserved != 0 {
@@ -168,6 +172,14 @@ pub enum DecodeError {
     TrailingBytes,
     /// The bytes decoded, but the model breaks a rule.
     Invalid(ModelError),
+    /// The blob is for the other arithmetic: a fixed-point blob (header flag bit 1) given to the
+    /// `f32` decoder, or an `f32` blob given to the fixed-point one.
+    Arithmetic {
+        /// Whether the blob is fixed-point.
+        fixed: bool,
+    },
+    /// The fixed-point blob decoded, but its model breaks a rule.
+    Fixed(crate::fixed::FixedError),
 }
 
 impl fmt::Display for DecodeError {
@@ -212,6 +224,13 @@ impl fmt::Display for DecodeError {
             ),
             DecodeError::TrailingBytes => f.write_str("blob body has bytes after its last field"),
             DecodeError::Invalid(e) => write!(f, "blob holds an invalid model: {e}"),
+            DecodeError::Arithmetic { fixed: true } => {
+                f.write_str("blob holds a fixed-point model; this build scores f32 models")
+            }
+            DecodeError::Arithmetic { fixed: false } => {
+                f.write_str("blob holds an f32 model; this build scores fixed-point models")
+            }
+            DecodeError::Fixed(e) => write!(f, "blob holds an invalid fixed-point model: {e}"),
         }
     }
 }
@@ -242,6 +261,8 @@ pub enum EncodeError {
     },
     /// The parameters break a rule, so no device would accept them.
     Invalid(ModelError),
+    /// The fixed-point parameters break a rule.
+    InvalidFixed(crate::fixed::FixedError),
 }
 
 impl fmt::Display for EncodeError {
@@ -251,19 +272,60 @@ impl fmt::Display for EncodeError {
                 write!(f, "a buffer of {capacity} bytes is too small for the blob")
             }
             EncodeError::Invalid(e) => write!(f, "cannot encode an invalid model: {e}"),
+            EncodeError::InvalidFixed(e) => {
+                write!(f, "cannot encode an invalid fixed-point model: {e}")
+            }
         }
     }
 }
 
 impl core::error::Error for EncodeError {}
 
-struct Writer<'a> {
+pub(crate) struct Writer<'a> {
     buf: &'a mut [u8],
     pos: usize,
 }
 
-impl Writer<'_> {
-    fn put<T: Serialize>(&mut self, value: &T) -> Result<(), EncodeError> {
+impl<'a> Writer<'a> {
+    pub(crate) fn new(buf: &'a mut [u8], pos: usize) -> Self {
+        Self { buf, pos }
+    }
+
+    /// Raw bytes.
+    pub(crate) fn bytes(&mut self, b: &[u8]) -> Result<(), EncodeError> {
+        let capacity = self.buf.len();
+        let end = self.pos + b.len();
+        self.buf
+            .get_mut(self.pos..end)
+            .ok_or(EncodeError::BufferTooSmall { capacity })?
+            .copy_from_slice(b);
+        self.pos = end;
+        Ok(())
+    }
+
+    /// Write the header in front of the body written so far and the CRC after it.
+    pub(crate) fn seal(self, n: u8, flags: u8) -> Result<usize, EncodeError> {
+        let capacity = self.buf.len();
+        let too_small = EncodeError::BufferTooSmall { capacity };
+        let body_end = self.pos;
+        let len = body_end + CRC_LEN;
+        let len16 = u16::try_from(len).map_err(|_| too_small)?;
+        let buf = self.buf;
+        let [l0, l1] = len16.to_le_bytes();
+        let head = [
+            MAGIC[0], MAGIC[1], MAGIC[2], MAGIC[3], VERSION, n, flags, 0, l0, l1,
+        ];
+        buf.get_mut(..HEADER_LEN)
+            .ok_or(too_small)?
+            .copy_from_slice(&head);
+        let crc = checksum(buf.get(..body_end).ok_or(too_small)?);
+        buf.get_mut(body_end..len)
+            .ok_or(too_small)?
+            .copy_from_slice(&crc.to_le_bytes());
+        Ok(len)
+    }
+
+    pub(crate) fn put<T: Serialize>(&mut self, value: &T) -> Result<(), EncodeError> {
         let capacity = self.buf.len();
         let rest = self
             .buf
@@ -287,12 +349,7 @@ pub fn encode<const N: usize>(
     buf: &mut [u8],
 ) -> Result<usize, EncodeError> {
     params.validate().map_err(EncodeError::Invalid)?;
-    let capacity = buf.len();
-    let too_small = EncodeError::BufferTooSmall { capacity };
-    let mut w = Writer {
-        buf,
-        pos: HEADER_LEN,
-    };
+    let mut w = Writer::new(buf, HEADER_LEN);
     let (m, p, t, pol) = (
         &params.meta,
         &params.preprocess,
@@ -313,26 +370,11 @@ pub fn encode<const N: usize>(
     w.put(&t.clear)?;
     w.put(&pol.raise_after)?;
     w.put(&pol.clear_after)?;
-    let body_end = w.pos;
-    let len = body_end + CRC_LEN;
-    let len16 = u16::try_from(len).map_err(|_| too_small)?;
-    let buf = w.buf;
     let flags = if pol.latch { FLAG_LATCH } else { 0 };
-    let [l0, l1] = len16.to_le_bytes();
-    let head = [
-        MAGIC[0], MAGIC[1], MAGIC[2], MAGIC[3], VERSION, N as u8, flags, 0, l0, l1,
-    ];
-    buf.get_mut(..HEADER_LEN)
-        .ok_or(too_small)?
-        .copy_from_slice(&head);
-    let crc = checksum(buf.get(..body_end).ok_or(too_small)?);
-    buf.get_mut(body_end..len)
-        .ok_or(too_small)?
-        .copy_from_slice(&crc.to_le_bytes());
-    Ok(len)
+    w.seal(N as u8, flags)
 }
 
-struct Reader<'a> {
+pub(crate) struct Reader<'a> {
     rest: &'a [u8],
     /// Offset in the blob of `rest[0]`.
     offset: usize,
@@ -348,15 +390,11 @@ impl Reader<'_> {
         Ok((value, before.get(..used).unwrap_or(before)))
     }
 
-    fn float(&mut self) -> Result<f32, DecodeError> {
-        self.take().map(|(v, _)| v)
-    }
-
     /// An unsigned varint (LEB128, as postcard writes it), in its shortest form only. postcard's
     /// reader refuses a varint too long for its type or with bits beyond it, but accepts padding:
     /// `83 00` reads as 3. A varint of more than one byte is the shortest form exactly when its
     /// last byte is not zero.
-    fn varint<T: DeserializeOwned>(&mut self) -> Result<T, DecodeError> {
+    pub(crate) fn varint<T: DeserializeOwned>(&mut self) -> Result<T, DecodeError> {
         let offset = self.offset;
         let (value, bytes) = self.take()?;
         if let [_, .., 0] = bytes {
@@ -365,17 +403,39 @@ impl Reader<'_> {
         Ok(value)
     }
 
-    fn floats(&mut self, out: &mut [f32]) -> Result<(), DecodeError> {
-        out.iter_mut().try_for_each(|v| {
-            *v = self.float()?;
+    /// The next `K` raw bytes.
+    pub(crate) fn array<const K: usize>(&mut self) -> Result<[u8; K], DecodeError> {
+        let (head, rest) = self
+            .rest
+            .split_first_chunk::<K>()
+            .ok_or(DecodeError::Body)?;
+        self.rest = rest;
+        self.offset += K;
+        Ok(*head)
+    }
+
+    /// The body must end here.
+    pub(crate) fn finish(&self) -> Result<(), DecodeError> {
+        if self.rest.is_empty() {
             Ok(())
-        })
+        } else {
+            Err(DecodeError::TrailingBytes)
+        }
     }
 }
 
-/// Decode and validate a blob for a model of `N` features. `bytes` must be exactly the blob.
-pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeError> {
+/// The checks every blob gets before its body, in FORMAT.md's order (header, `N`, length, CRC),
+/// and a reader at the start of the body. `fixed`: which arithmetic the caller scores with; a
+/// blob for the other is refused ([`DecodeError::Arithmetic`]) right after the header.
+pub(crate) fn open<const N: usize>(
+    bytes: &[u8],
+    fixed: bool,
+) -> Result<(u8, Reader<'_>), DecodeError> {
     let h = Header::parse(bytes)?;
+    let is_fixed = h.flags & FLAG_FIXED != 0;
+    if is_fixed != fixed {
+        return Err(DecodeError::Arithmetic { fixed: is_fixed });
+    }
     if N == 0 || N > MAX_FEATURES {
         return Err(DecodeError::UnsupportedDimension {
             found: h.n,
@@ -401,46 +461,103 @@ pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeErro
     if stored != computed {
         return Err(DecodeError::Crc { stored, computed });
     }
-    let mut r = Reader {
+    let r = Reader {
         rest: covered.get(HEADER_LEN..).ok_or(DecodeError::Body)?,
         offset: HEADER_LEN,
     };
+    Ok((h.flags, r))
+}
+
+/// Bytes of the floats of a model of `n` features in the body: offset, scale and mean (`n` each),
+/// the lower triangle of `W` and the two thresholds.
+pub const fn floats_len(n: usize) -> usize {
+    4 * (3 * n + n * (n + 1) / 2 + 2)
+}
+
+/// A blob whose header, CRC and varints have been checked: its integer fields, and its floats
+/// still as bytes (in flash, for a blob read in place). The model rules are not yet checked.
+pub(crate) struct Body<'a> {
+    pub(crate) meta: ModelMeta,
+    pub(crate) log_mask: u32,
+    /// [`floats_len`]`(N)` bytes, from `offset[0]` to the clear threshold.
+    pub(crate) floats: &'a [u8],
+    pub(crate) policy: AlarmPolicy,
+}
+
+/// Everything of [`decode`] but the floats' values and the model rules, in the order FORMAT.md
+/// gives: header, `N`, length, CRC, body.
+pub(crate) fn read_body<const N: usize>(bytes: &[u8]) -> Result<Body<'_>, DecodeError> {
+    let (flags, mut r) = open::<N>(bytes, false)?;
     let meta = ModelMeta {
         model_id: r.varint()?,
         trained_at: r.varint()?,
         sequence: r.varint()?,
     };
-    let mut preprocess = Preprocess::<N> {
-        log_mask: r.varint()?,
-        ..Preprocess::identity()
-    };
-    r.floats(&mut preprocess.offset)?;
-    r.floats(&mut preprocess.scale)?;
-    let mut mean = [0.0f32; N];
-    r.floats(&mut mean)?;
-    let mut w = [[0.0f32; N]; N];
-    for (i, row) in w.iter_mut().enumerate() {
-        r.floats(row.get_mut(..=i).unwrap_or(&mut []))?;
+    let log_mask = r.varint()?;
+    let n_floats = floats_len(N);
+    if r.rest.len() < n_floats {
+        return Err(DecodeError::Body);
     }
-    let thresholds = Thresholds {
-        alarm: r.float()?,
-        clear: r.float()?,
-    };
+    let (floats, rest) = r.rest.split_at(n_floats);
+    r.rest = rest;
+    r.offset += n_floats;
     let policy = AlarmPolicy {
         raise_after: r.varint()?,
         clear_after: r.varint()?,
-        latch: h.flags & FLAG_LATCH != 0,
+        latch: flags & FLAG_LATCH != 0,
     };
-    if !r.rest.is_empty() {
-        return Err(DecodeError::TrailingBytes);
-    }
-    let params = ModelParams {
+    r.finish()?;
+    Ok(Body {
         meta,
+        log_mask,
+        floats,
+        policy,
+    })
+}
+
+/// The `k`-th little-endian `f32` of `bytes` (NaN past the end, which no caller reaches: the
+/// rules refuse NaN, so a short slice could never pass for a model).
+#[inline(always)]
+pub(crate) fn f32_at(bytes: &[u8], k: usize) -> f32 {
+    match bytes.get(4 * k..4 * k + 4) {
+        Some(&[a, b, c, d]) => f32::from_le_bytes([a, b, c, d]),
+        _ => f32::NAN,
+    }
+}
+
+/// Decode and validate a blob for a model of `N` features. `bytes` must be exactly the blob.
+pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeError> {
+    let body = read_body::<N>(bytes)?;
+    let fl = body.floats;
+    let mut k = 0;
+    let mut next = || {
+        let v = f32_at(fl, k);
+        k += 1;
+        v
+    };
+    let mut preprocess = Preprocess::<N> {
+        log_mask: body.log_mask,
+        ..Preprocess::identity()
+    };
+    preprocess.offset.iter_mut().for_each(|v| *v = next());
+    preprocess.scale.iter_mut().for_each(|v| *v = next());
+    let mut mean = [0.0f32; N];
+    mean.iter_mut().for_each(|v| *v = next());
+    let mut w = [[0.0f32; N]; N];
+    for (i, row) in w.iter_mut().enumerate() {
+        row.iter_mut().take(i + 1).for_each(|v| *v = next());
+    }
+    let thresholds = Thresholds {
+        alarm: next(),
+        clear: next(),
+    };
+    let params = ModelParams {
+        meta: body.meta,
         preprocess,
         mean,
         w,
         thresholds,
-        policy,
+        policy: body.policy,
     };
     params.validate()?;
     Ok(params)

@@ -23,16 +23,20 @@
 //!
 //! # Memory
 //!
-//! Everything has a size known at compile time; there is no heap. A decoded model keeps its
-//! parameters (for reporting and re-encoding) and the folded form that scoring uses, so its RAM is
-//! `8 N² + 16 N + 48` bytes. Measured with `core::mem::size_of` on x86-64 and thumbv7em alike
-//! (the same field alignments; the test
-//! `model_sizes_are_as_documented` pins these):
+//! Everything has a size known at compile time; there is no heap. Three forms of a model, all
+//! scoring through one definition, so their d² are the same bits ([`flash`] has the details):
 //!
-//! | model | `size_of` | blob, bytes |
+//! | form | what it keeps | RAM on thumbv7em, N = 8 / 16 / 32 |
 //! |---|---|---|
-//! | `Model<8>` | 688 | see `FORMAT.md` |
-//! | `Model<16>` | 2 352 | see `FORMAT.md` |
+//! | [`Model`] | the parameters and a square folded factor: `8 N² + 16 N + 48` | 688 / 2 352 / 8 752 |
+//! | [`CompactModel`] | the folded factor packed (`N(N+1)/2` floats) and the centre | 224 / 656 / 2 288 |
+//! | [`FlashModel`] | a checked view of the blob, the centre and a few scalars: `4 N + 48` | 80 / 112 / 176 |
+//!
+//! The `FlashModel` meets `64 + 8 N` for every N up to 32; the node in `firmware-example` keeps
+//! one. `Model`'s figures are pinned by the test `model_sizes_are_as_documented` (x86-64 and
+//! thumbv7em have the same field alignments); the other two are pinned at compile time on 32-bit
+//! targets and by a test on 64-bit hosts (where the borrowed slice is 8 bytes longer). The
+//! fixed-point [`FixedModel`] for parts without an FPU ([`fixed`]) takes 144 bytes at N = 8.
 //!
 //! Scoring itself uses `4 N` bytes of stack for the deviation vector, plus a few registers.
 //!
@@ -66,11 +70,15 @@
 
 pub mod alarm;
 pub mod blob;
+pub mod fixed;
+pub mod flash;
 pub mod model;
 pub mod params;
 
 pub use alarm::{AlarmMachine, Event, EventKind, FaultCause, Status, Step};
 pub use blob::{DecodeError, EncodeError};
+pub use fixed::{FixedModel, FixedParams};
+pub use flash::{tri, CompactModel, FlashModel};
 pub use model::{Explained, Model, ReadingFault, Scored, Verdict};
 pub use params::{
     AlarmPolicy, Field, ModelError, ModelMeta, ModelParams, Preprocess, Thresholds, MAX_FEATURES,

@@ -141,20 +141,20 @@ impl<const N: usize> Model<N> {
             *c = fold_center(*o, *m, *s);
         }
         let mut v = [[0.0f32; N]; N];
-        let mut ln_norm = -0.5 * N as f64 * LN_2PI;
         for (i, (vrow, wrow)) in v.iter_mut().zip(&params.w).enumerate() {
             for (vij, (wij, sj)) in vrow.iter_mut().zip(wrow.iter().zip(&p.scale)).take(i + 1) {
                 *vij = fold_factor(*wij, *sj);
             }
-            if let Some(d) = vrow.get(i) {
-                ln_norm += libm::log(f64::from(*d));
-            }
         }
+        let ln_norm = ln_norm(
+            N,
+            v.iter().enumerate().filter_map(|(i, r)| r.get(i).copied()),
+        );
         Ok(Self {
             params,
             center,
             v,
-            ln_norm: ln_norm as f32,
+            ln_norm,
         })
     }
 
@@ -183,96 +183,10 @@ impl<const N: usize> Model<N> {
         &self.center
     }
 
-    /// `d = t(x) − c`. Without log features this is a plain subtraction.
-    #[inline(always)]
-    fn deviation(&self, x: &[f32; N]) -> Result<[f32; N], ReadingFault> {
-        let mut d = [0.0f32; N];
-        let mask = self.params.preprocess.log_mask;
-        if mask == 0 {
-            for ((di, xi), ci) in d.iter_mut().zip(x).zip(&self.center) {
-                *di = xi - ci;
-            }
-        } else {
-            for (i, ((di, xi), ci)) in d.iter_mut().zip(x).zip(&self.center).enumerate() {
-                let t = if (mask >> i) & 1 == 1 {
-                    if !xi.is_finite() {
-                        return Err(ReadingFault::NotFinite { feature: i as u8 });
-                    }
-                    if *xi <= 0.0 {
-                        return Err(ReadingFault::LogDomain { feature: i as u8 });
-                    }
-                    libm::logf(*xi)
-                } else {
-                    *xi
-                };
-                *di = t - ci;
-            }
-        }
-        Ok(d)
-    }
-
-    /// `zᵢ = Σⱼ≤ᵢ Vᵢⱼ dⱼ`, summed from `j = 0` up, starting from the first product (not from
-    /// `0.0`, which would cost an instruction a row and only changes the sign of a zero `zᵢ`).
-    /// The one definition of a row, shared by [`Self::distance`] and [`Self::project`].
-    #[inline(always)]
-    fn row_dot(row: &[f32; N], d: &[f32; N], i: usize) -> f32 {
-        let mut terms = row.iter().zip(d).take(i + 1).map(|(vij, dj)| vij * dj);
-        let first = terms.next().unwrap_or(0.0);
-        terms.fold(first, |z, t| z + t)
-    }
-
-    /// `d² = ‖V d‖²`, without keeping `z`: `z₀² + z₁² + …`, summed in row order. Same operations,
-    /// in the same order, as [`Self::project`], so the two agree to the bit.
-    #[inline(always)]
-    fn distance(&self, d: &[f32; N]) -> f32 {
-        let mut zs = self
-            .v
-            .iter()
-            .enumerate()
-            .map(|(i, row)| Self::row_dot(row, d, i));
-        let z0 = zs.next().unwrap_or(0.0);
-        zs.fold(z0 * z0, |acc, z| acc + z * z)
-    }
-
-    /// `z = V d` and `d² = ‖z‖²`, with the operations of [`Self::distance`].
-    fn project(&self, d: &[f32; N]) -> ([f32; N], f32) {
-        let mut zs = [0.0f32; N];
-        for (i, (row, zi)) in self.v.iter().zip(zs.iter_mut()).enumerate() {
-            *zi = Self::row_dot(row, d, i);
-        }
-        let mut it = zs.iter();
-        let z0 = it.next().copied().unwrap_or(0.0);
-        let acc = it.fold(z0 * z0, |acc, z| acc + z * z);
-        (zs, acc)
-    }
-
-    /// The slow path after a non-finite d²: find which input was at fault.
-    #[cold]
-    fn diagnose(x: &[f32; N]) -> ReadingFault {
-        match x.iter().position(|v| !v.is_finite()) {
-            Some(i) => ReadingFault::NotFinite { feature: i as u8 },
-            None => ReadingFault::Overflow,
-        }
-    }
-
-    #[inline(always)]
-    fn judge(&self, x: &[f32; N], d2: f32) -> Result<Scored, ReadingFault> {
-        if !d2.is_finite() {
-            return Err(Self::diagnose(x));
-        }
-        let verdict = if d2 > self.params.thresholds.alarm {
-            Verdict::Above
-        } else {
-            Verdict::Below
-        };
-        Ok(Scored { d2, verdict })
-    }
-
     /// Score a reading in raw sensor units: d² and its verdict, or why it could not be scored.
     #[inline]
     pub fn score(&self, x: &[f32; N]) -> Result<Scored, ReadingFault> {
-        let d = self.deviation(x)?;
-        self.judge(x, self.distance(&d))
+        score(self, x)
     }
 
     /// Score a reading and split d² into per-feature contributions.
@@ -285,40 +199,207 @@ impl<const N: usize> Model<N> {
     /// an infinite contribution; [`Model::score`] still scores the reading. Every contribution
     /// returned is finite.
     pub fn explain(&self, x: &[f32; N]) -> Result<Explained<N>, ReadingFault> {
-        let d = self.deviation(x)?;
-        let (z, d2) = self.project(&d);
-        let score = self.judge(x, d2)?;
-        let mut back = [0.0f64; N];
-        for (row, zi) in self.v.iter().zip(&z) {
-            for (bj, vij) in back.iter_mut().zip(row) {
-                *bj += f64::from(*vij) * f64::from(*zi);
-            }
-        }
-        let mut contributions = [0.0f32; N];
-        for ((c, dj), bj) in contributions.iter_mut().zip(&d).zip(&back) {
-            *c = (f64::from(*dj) * bj) as f32;
-            if !c.is_finite() {
-                return Err(ReadingFault::ContributionOverflow);
-            }
-        }
-        Ok(Explained {
-            score,
-            contributions,
-        })
+        explain(self, x)
     }
 
     /// The natural log of the model's density at `x`, in the units of the raw reading
     /// (including the Jacobian of any log transform): `−½ (d² + N ln 2π) + Σ ln Vᵢᵢ − Σ_log ln xᵢ`.
     pub fn log_density(&self, x: &[f32; N]) -> Result<f32, ReadingFault> {
-        let s = self.score(x)?;
-        let mut jac = 0.0f32;
-        for (i, xi) in x.iter().enumerate() {
-            if self.params.preprocess.is_log(i) {
-                jac += libm::logf(*xi);
-            }
-        }
-        Ok(self.ln_norm - 0.5 * s.d2 - jac)
+        log_density(self, self.ln_norm, x)
     }
+}
+
+impl<const N: usize> Folded<N> for Model<N> {
+    #[inline(always)]
+    fn center(&self) -> &[f32; N] {
+        &self.center
+    }
+
+    #[inline(always)]
+    fn log_mask(&self) -> u32 {
+        self.params.preprocess.log_mask
+    }
+
+    #[inline(always)]
+    fn alarm(&self) -> f32 {
+        self.params.thresholds.alarm
+    }
+
+    #[inline(always)]
+    fn row(&self, i: usize) -> impl Iterator<Item = f32> + '_ {
+        self.v.get(i).unwrap_or(&[f32::NAN; N]).iter().copied()
+    }
+}
+
+/// The folded form a score reads: the centre `c`, the rows of `V = W · diag(scale)` (lower
+/// triangle, `Vᵢⱼ` for `j ≤ i`), the log mask and the alarm threshold.
+///
+/// Three forms provide it: [`Model`] (parameters and a square `V` in RAM), the compact
+/// [`crate::CompactModel`] (a packed `V` in RAM) and the flash-resident [`crate::FlashModel`],
+/// which computes each `Vᵢⱼ = Wᵢⱼ · scaleⱼ` from the blob's bytes as it goes, with the same `f32`
+/// multiply the others did once. The maths below is written once against this trait, so the three
+/// give the same bits.
+pub(crate) trait Folded<const N: usize> {
+    /// The centre `c`.
+    fn center(&self) -> &[f32; N];
+    /// Bit `i`: feature `i` is log-transformed.
+    fn log_mask(&self) -> u32;
+    /// The alarm threshold on d².
+    fn alarm(&self) -> f32;
+    /// Row `i` from `Vᵢ₀` on, at least `i + 1` values; the callers take the first `i + 1`. (Every
+    /// form gives `N` values, a fixed-length window, which the compiler unrolls: in a packed
+    /// triangle the `N` values from row `i`'s start never run past its end.)
+    fn row(&self, i: usize) -> impl Iterator<Item = f32> + '_;
+}
+
+/// `d = t(x) − c`. Without log features this is a plain subtraction.
+#[inline(always)]
+fn deviation<const N: usize>(
+    mask: u32,
+    center: &[f32; N],
+    x: &[f32; N],
+) -> Result<[f32; N], ReadingFault> {
+    let mut d = [0.0f32; N];
+    if mask == 0 {
+        for ((di, xi), ci) in d.iter_mut().zip(x).zip(center) {
+            *di = xi - ci;
+        }
+    } else {
+        for (i, ((di, xi), ci)) in d.iter_mut().zip(x).zip(center).enumerate() {
+            let t = if (mask >> i) & 1 == 1 {
+                if !xi.is_finite() {
+                    return Err(ReadingFault::NotFinite { feature: i as u8 });
+                }
+                if *xi <= 0.0 {
+                    return Err(ReadingFault::LogDomain { feature: i as u8 });
+                }
+                libm::logf(*xi)
+            } else {
+                *xi
+            };
+            *di = t - ci;
+        }
+    }
+    Ok(d)
+}
+
+/// `zᵢ = Σⱼ≤ᵢ Vᵢⱼ dⱼ`, summed from `j = 0` up, starting from the first product (not from
+/// `0.0`, which would cost an instruction a row and only changes the sign of a zero `zᵢ`).
+/// The one definition of a row, shared by [`distance`] and [`project`].
+#[inline(always)]
+fn row_dot<const N: usize>(row: impl Iterator<Item = f32>, d: &[f32; N], i: usize) -> f32 {
+    let mut terms = row.zip(d).take(i + 1).map(|(vij, dj)| vij * dj);
+    let first = terms.next().unwrap_or(0.0);
+    terms.fold(first, |z, t| z + t)
+}
+
+/// `d² = ‖V d‖²`, without keeping `z`: `z₀² + z₁² + …`, summed in row order. Same operations,
+/// in the same order, as [`project`], so the two agree to the bit.
+#[inline(always)]
+fn distance<const N: usize, F: Folded<N>>(f: &F, d: &[f32; N]) -> f32 {
+    let mut zs = (0..N).map(|i| row_dot(f.row(i), d, i));
+    let z0 = zs.next().unwrap_or(0.0);
+    zs.fold(z0 * z0, |acc, z| acc + z * z)
+}
+
+/// `z = V d` and `d² = ‖z‖²`, with the operations of [`distance`].
+#[inline(always)]
+fn project<const N: usize, F: Folded<N>>(f: &F, d: &[f32; N]) -> ([f32; N], f32) {
+    let mut zs = [0.0f32; N];
+    for (i, zi) in zs.iter_mut().enumerate() {
+        *zi = row_dot(f.row(i), d, i);
+    }
+    let mut it = zs.iter();
+    let z0 = it.next().copied().unwrap_or(0.0);
+    let acc = it.fold(z0 * z0, |acc, z| acc + z * z);
+    (zs, acc)
+}
+
+/// The slow path after a non-finite d²: find which input was at fault.
+#[cold]
+fn diagnose<const N: usize>(x: &[f32; N]) -> ReadingFault {
+    match x.iter().position(|v| !v.is_finite()) {
+        Some(i) => ReadingFault::NotFinite { feature: i as u8 },
+        None => ReadingFault::Overflow,
+    }
+}
+
+#[inline(always)]
+fn judge<const N: usize>(alarm: f32, x: &[f32; N], d2: f32) -> Result<Scored, ReadingFault> {
+    if !d2.is_finite() {
+        return Err(diagnose(x));
+    }
+    let verdict = if d2 > alarm {
+        Verdict::Above
+    } else {
+        Verdict::Below
+    };
+    Ok(Scored { d2, verdict })
+}
+
+/// A score: the definition every form calls.
+#[inline(always)]
+pub(crate) fn score<const N: usize, F: Folded<N>>(
+    f: &F,
+    x: &[f32; N],
+) -> Result<Scored, ReadingFault> {
+    let d = deviation(f.log_mask(), f.center(), x)?;
+    judge(f.alarm(), x, distance(f, &d))
+}
+
+/// A score split into contributions (see [`Model::explain`]).
+pub(crate) fn explain<const N: usize, F: Folded<N>>(
+    f: &F,
+    x: &[f32; N],
+) -> Result<Explained<N>, ReadingFault> {
+    let d = deviation(f.log_mask(), f.center(), x)?;
+    let (z, d2) = project(f, &d);
+    let score = judge(f.alarm(), x, d2)?;
+    // `backⱼ = Σᵢ Vᵢⱼ zᵢ` over the lower triangle. (The square `V` of [`Model`] once added its
+    // zeros above the diagonal too; adding `±0` to a sum that starts at `+0` changes no bit.)
+    let mut back = [0.0f64; N];
+    for (i, zi) in z.iter().enumerate() {
+        for (bj, vij) in back.iter_mut().zip(f.row(i)).take(i + 1) {
+            *bj += f64::from(vij) * f64::from(*zi);
+        }
+    }
+    let mut contributions = [0.0f32; N];
+    for ((c, dj), bj) in contributions.iter_mut().zip(&d).zip(&back) {
+        *c = (f64::from(*dj) * bj) as f32;
+        if !c.is_finite() {
+            return Err(ReadingFault::ContributionOverflow);
+        }
+    }
+    Ok(Explained {
+        score,
+        contributions,
+    })
+}
+
+/// The log-density (see [`Model::log_density`]), with `ln_norm = Σ ln Vᵢᵢ − N/2 ln 2π`.
+pub(crate) fn log_density<const N: usize, F: Folded<N>>(
+    f: &F,
+    ln_norm: f32,
+    x: &[f32; N],
+) -> Result<f32, ReadingFault> {
+    let s = score(f, x)?;
+    let mask = f.log_mask();
+    let mut jac = 0.0f32;
+    for (i, xi) in x.iter().enumerate() {
+        if i < 32 && (mask >> i) & 1 == 1 {
+            jac += libm::logf(*xi);
+        }
+    }
+    Ok(ln_norm - 0.5 * s.d2 - jac)
+}
+
+/// `Σ ln Vᵢᵢ − N/2 ln 2π` in `f64`, rounded to `f32`, from the diagonal in row order.
+pub(crate) fn ln_norm(n: usize, diagonal: impl Iterator<Item = f32>) -> f32 {
+    let mut acc = -0.5 * n as f64 * LN_2PI;
+    for d in diagonal {
+        acc += libm::log(f64::from(d));
+    }
+    acc as f32
 }
 
 #[cfg(test)]

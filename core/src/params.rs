@@ -221,16 +221,6 @@ impl fmt::Display for ModelError {
 
 impl core::error::Error for ModelError {}
 
-fn finite(values: &[f32], field: Field) -> Result<(), ModelError> {
-    match values.iter().position(|v| !v.is_finite()) {
-        None => Ok(()),
-        Some(i) => Err(ModelError::NotFinite {
-            field,
-            index: i as u8,
-        }),
-    }
-}
-
 /// `W[i][j] · scale[j]`, one element of the factor in the reading's units. The one definition of
 /// the fold, shared by [`ModelParams::validate`] and [`crate::Model::new`], so that what the one
 /// accepts the other builds.
@@ -250,62 +240,150 @@ impl<const N: usize> ModelParams<N> {
     /// Check every rule a [`crate::Model`] relies on, the fold into its scoring form included:
     /// `Ok` here means [`crate::Model::new`] succeeds.
     pub fn validate(&self) -> Result<(), ModelError> {
-        if N == 0 || N > MAX_FEATURES {
-            return Err(ModelError::Dimension { n: N });
+        check(self)
+    }
+}
+
+/// Where [`check`] reads a model's parameters from: a [`ModelParams`] in RAM, or the packed
+/// floats of a blob in flash (`crate::flash`). The rules are written once, in [`check`], against
+/// this view, so that a model in RAM and one read in place in flash are held to the same rules,
+/// with the same errors in the same order.
+pub(crate) trait ParamSource<const N: usize> {
+    /// `offset[i]`.
+    fn offset(&self, i: usize) -> f32;
+    /// `scale[i]`.
+    fn scale(&self, i: usize) -> f32;
+    /// `mean[i]`.
+    fn mean(&self, i: usize) -> f32;
+    /// `W[i][j]` for `j ≤ i`.
+    fn w(&self, i: usize, j: usize) -> f32;
+    /// Whether every stored element of row `i` of `W` is finite (the strict upper triangle too,
+    /// where there is one).
+    fn row_finite(&self, i: usize) -> bool {
+        (0..=i).all(|j| self.w(i, j).is_finite())
+    }
+    /// The first column above the diagonal of row `i` that is not zero (a packed triangle has none).
+    fn above_diagonal(&self, _i: usize) -> Option<usize> {
+        None
+    }
+    /// The log mask.
+    fn log_mask(&self) -> u32;
+    /// The thresholds.
+    fn thresholds(&self) -> Thresholds;
+    /// The policy.
+    fn policy(&self) -> AlarmPolicy;
+}
+
+impl<const N: usize> ParamSource<N> for ModelParams<N> {
+    fn offset(&self, i: usize) -> f32 {
+        self.preprocess.offset.get(i).copied().unwrap_or(f32::NAN)
+    }
+    fn scale(&self, i: usize) -> f32 {
+        self.preprocess.scale.get(i).copied().unwrap_or(f32::NAN)
+    }
+    fn mean(&self, i: usize) -> f32 {
+        self.mean.get(i).copied().unwrap_or(f32::NAN)
+    }
+    fn w(&self, i: usize, j: usize) -> f32 {
+        self.w
+            .get(i)
+            .and_then(|r| r.get(j))
+            .copied()
+            .unwrap_or(f32::NAN)
+    }
+    fn row_finite(&self, i: usize) -> bool {
+        self.w
+            .get(i)
+            .is_some_and(|r| r.iter().all(|v| v.is_finite()))
+    }
+    fn above_diagonal(&self, i: usize) -> Option<usize> {
+        let row = self.w.get(i)?;
+        row.iter()
+            .skip(i + 1)
+            .position(|v| *v != 0.0)
+            .map(|j| i + 1 + j)
+    }
+    fn log_mask(&self) -> u32 {
+        self.preprocess.log_mask
+    }
+    fn thresholds(&self) -> Thresholds {
+        self.thresholds
+    }
+    fn policy(&self) -> AlarmPolicy {
+        self.policy
+    }
+}
+
+fn first_not_finite(values: impl Iterator<Item = f32>, field: Field) -> Result<(), ModelError> {
+    let mut values = values;
+    match values.position(|v| !v.is_finite()) {
+        None => Ok(()),
+        Some(i) => Err(ModelError::NotFinite {
+            field,
+            index: i as u8,
+        }),
+    }
+}
+
+/// Every rule a model keeps, the fold into its scoring form included, read through `s`. The one
+/// definition of the rules: [`ModelParams::validate`] and the flash-resident model's check both
+/// call it.
+pub(crate) fn check<const N: usize, S: ParamSource<N>>(s: &S) -> Result<(), ModelError> {
+    if N == 0 || N > MAX_FEATURES {
+        return Err(ModelError::Dimension { n: N });
+    }
+    first_not_finite((0..N).map(|i| s.offset(i)), Field::Offset)?;
+    first_not_finite((0..N).map(|i| s.scale(i)), Field::Scale)?;
+    if let Some(i) = (0..N).position(|i| s.scale(i) <= 0.0) {
+        return Err(ModelError::Scale { index: i as u8 });
+    }
+    if N < 32 && s.log_mask() >> N != 0 {
+        return Err(ModelError::LogMask);
+    }
+    first_not_finite((0..N).map(|i| s.mean(i)), Field::Mean)?;
+    for i in 0..N {
+        if !s.row_finite(i) {
+            return Err(ModelError::NotFinite {
+                field: Field::Factor,
+                index: i as u8,
+            });
         }
-        let p = &self.preprocess;
-        finite(&p.offset, Field::Offset)?;
-        finite(&p.scale, Field::Scale)?;
-        if let Some(i) = p.scale.iter().position(|s| *s <= 0.0) {
-            return Err(ModelError::Scale { index: i as u8 });
+        if let Some(j) = s.above_diagonal(i) {
+            return Err(ModelError::FactorNotLower {
+                row: i as u8,
+                col: j as u8,
+            });
         }
-        if N < 32 && p.log_mask >> N != 0 {
-            return Err(ModelError::LogMask);
+        if s.w(i, i) <= 0.0 || s.w(i, i).is_nan() {
+            return Err(ModelError::FactorDiagonal { index: i as u8 });
         }
-        finite(&self.mean, Field::Mean)?;
-        for (i, row) in self.w.iter().enumerate() {
-            if row.iter().any(|v| !v.is_finite()) {
-                return Err(ModelError::NotFinite {
-                    field: Field::Factor,
-                    index: i as u8,
-                });
-            }
-            if let Some(j) = row.iter().skip(i + 1).position(|v| *v != 0.0) {
-                return Err(ModelError::FactorNotLower {
-                    row: i as u8,
-                    col: (i + 1 + j) as u8,
-                });
-            }
-            if row.get(i).is_none_or(|d| *d <= 0.0) {
-                return Err(ModelError::FactorDiagonal { index: i as u8 });
-            }
-        }
-        let t = &self.thresholds;
-        finite(&[t.alarm, t.clear], Field::Threshold)?;
-        if !(t.alarm > 0.0 && t.clear >= 0.0 && t.clear <= t.alarm) {
-            return Err(ModelError::ThresholdOrder);
-        }
-        let run = 1..=MAX_RUN;
-        if !run.contains(&self.policy.raise_after) || !run.contains(&self.policy.clear_after) {
-            return Err(ModelError::PolicyRange);
-        }
-        // The fold `Model::new` does, element by element without keeping it: every element of
-        // `W · diag(scale)` finite and its diagonal still positive, every centre finite.
-        for (i, row) in self.w.iter().enumerate() {
-            for (j, (wij, sj)) in row.iter().zip(&p.scale).take(i + 1).enumerate() {
-                let v = fold_factor(*wij, *sj);
-                if !v.is_finite() || (j == i && v <= 0.0) {
-                    return Err(ModelError::Overflow);
-                }
-            }
-        }
-        for ((o, m), s) in p.offset.iter().zip(&self.mean).zip(&p.scale) {
-            if !fold_center(*o, *m, *s).is_finite() {
+    }
+    let t = s.thresholds();
+    first_not_finite([t.alarm, t.clear].into_iter(), Field::Threshold)?;
+    if !(t.alarm > 0.0 && t.clear >= 0.0 && t.clear <= t.alarm) {
+        return Err(ModelError::ThresholdOrder);
+    }
+    let run = 1..=MAX_RUN;
+    let policy = s.policy();
+    if !run.contains(&policy.raise_after) || !run.contains(&policy.clear_after) {
+        return Err(ModelError::PolicyRange);
+    }
+    // The fold the scoring forms do, element by element without keeping it: every element of
+    // `W · diag(scale)` finite and its diagonal still positive, every centre finite.
+    for i in 0..N {
+        for j in 0..=i {
+            let v = fold_factor(s.w(i, j), s.scale(j));
+            if !v.is_finite() || (j == i && v <= 0.0) {
                 return Err(ModelError::Overflow);
             }
         }
-        Ok(())
     }
+    for i in 0..N {
+        if !fold_center(s.offset(i), s.mean(i), s.scale(i)).is_finite() {
+            return Err(ModelError::Overflow);
+        }
+    }
+    Ok(())
 }
 
 #[cfg(test)]

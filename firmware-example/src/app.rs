@@ -5,6 +5,7 @@
 //!
 //! ```text
 //! boot ellipsoid-node n=5                     (first)
+//! stack boot_peak_bytes=400                   (after boot, when the board measures its stack)
 //! readings count=14400                        (after boot, when the source is a table)
 //! readings unusable: <reason>                 (instead, when the source cannot be opened)
 //! stack peak_bytes=1968                       (after the run, when the board measures it)
@@ -46,8 +47,13 @@ where
     F: OutputPin,
 {
     let _ = writeln!(board.console(), "boot ellipsoid-node n={N}");
+    // Boot is measured on its own: choosing a model must not cost the stack a copy of one.
+    board.start_measuring();
     let slots = board.model_slots();
     let mut node = Node::<_, _, N>::boot(&slots, alarm, fault, board.console());
+    if let Some(peak) = board.stack_peak() {
+        let _ = writeln!(board.console(), "stack boot_peak_bytes={peak}");
+    }
     let ok = match board.readings() {
         Ok(mut source) => {
             if let Some(count) = source.total() {
@@ -165,11 +171,13 @@ mod tests {
             format!("model slot=A seq=1 id=0x00000007 crc={crc:#010x} mark=unconfirmed");
         let expected = [
             "boot ellipsoid-node n=2",
+            "(painted)",
             &slot_line,
             "slot B unusable: empty",
             &model_line,
             "pin fault off level=low at=boot",
             "pin alarm off level=low at=boot",
+            "stack boot_peak_bytes=1234",
             "readings count=2",
             "(painted)",
             // 16.0f32 = 0x41800000 (IEEE-754 single: exponent 131, mantissa 0).
@@ -198,7 +206,7 @@ mod tests {
             Line::new(fault.clone(), ActiveLevel::High),
         );
         assert!(!ok);
-        let tail: Vec<&str> = bench.out.lines().skip(4).collect();
+        let tail: Vec<&str> = bench.out.lines().skip(5).collect();
         assert_eq!(
             tail,
             [
@@ -210,7 +218,10 @@ mod tests {
             "{}",
             bench.out
         );
-        assert!(!bench.started, "measured a run that never started");
+        assert!(
+            !bench.out.contains("stack peak_bytes"),
+            "measured a run that never started"
+        );
         alarm.done();
         fault.done();
     }

@@ -3,9 +3,29 @@
 #![cfg_attr(target_os = "none", no_std, no_main)]
 
 /// Features per reading: the demo booster pump's five sensors. A blob for another N is refused
-/// at boot (and reported), like any other invalid slot.
+/// at boot (and reported), like any other invalid slot. `ELLIPSOID_NODE_N=8` at build time builds
+/// the image for another N (e2e.sh measures the flash of an N = 8 image that way).
 #[cfg(target_os = "none")]
-const N: usize = 5;
+const N: usize = match option_env!("ELLIPSOID_NODE_N") {
+    Some(n) => parse_n(n),
+    None => 5,
+};
+
+/// A decimal `N` in 1..=32, at compile time (a bad value fails the build).
+#[cfg(target_os = "none")]
+const fn parse_n(s: &str) -> usize {
+    let b = s.as_bytes();
+    let mut n = 0;
+    let mut i = 0;
+    assert!(!b.is_empty(), "ELLIPSOID_NODE_N is empty");
+    while i < b.len() {
+        assert!(b[i].is_ascii_digit(), "ELLIPSOID_NODE_N must be a number");
+        n = n * 10 + (b[i] - b'0') as usize;
+        i += 1;
+    }
+    assert!(n >= 1 && n <= 32, "ELLIPSOID_NODE_N must be in 1..=32");
+    n
+}
 
 #[cfg(target_os = "none")]
 #[cortex_m_rt::entry]

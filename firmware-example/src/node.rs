@@ -32,7 +32,7 @@
 use core::fmt::{self, Write};
 
 use ellipsoid_core::{
-    AlarmMachine, EventKind, Explained, Model, ReadingFault, Scored, Step, Verdict,
+    AlarmMachine, EventKind, Explained, FlashModel, ReadingFault, Scored, Step, Verdict,
 };
 use embedded_hal::digital::OutputPin;
 
@@ -43,17 +43,27 @@ use crate::source::ReadingSource;
 /// Score one reading. Kept out of line so that the image check for panic machinery (see the
 /// README) can find the scoring path by its symbol.
 #[inline(never)]
-pub fn score<const N: usize>(model: &Model<N>, x: &[f32; N]) -> Result<Scored, ReadingFault> {
+pub fn score<const N: usize>(
+    model: &FlashModel<'_, N>,
+    x: &[f32; N],
+) -> Result<Scored, ReadingFault> {
     model.score(x)
 }
 
 /// Score a reading and split d² per feature (only on a raised alarm). Out of line, as [`score`].
 #[inline(never)]
 pub fn explain<const N: usize>(
-    model: &Model<N>,
+    model: &FlashModel<'_, N>,
     x: &[f32; N],
 ) -> Result<Explained<N>, ReadingFault> {
     model.explain(x)
+}
+
+/// Feed one score to the alarm state machine. Out of line, as [`score`], so that the image's
+/// flash per function group (see the README) can find the alarm logic by its symbol.
+#[inline(never)]
+pub fn alarm_update(machine: &mut AlarmMachine, scored: &Result<Scored, ReadingFault>) -> Step {
+    machine.update(scored)
 }
 
 /// What a run did.
@@ -66,9 +76,12 @@ pub struct Summary {
 }
 
 /// A sensor node: a model (or none), the alarm state machine and the two lines.
+///
+/// The model is a [`FlashModel`]: a checked view of the blob in its slot (lifetime `'m`), so the
+/// node holds `4 N + 48` bytes of it (at N = 5, 72 bytes on thumbv7em), never a decoded copy.
 #[derive(Debug)]
-pub struct Node<A, F, const N: usize> {
-    model: Option<Model<N>>,
+pub struct Node<'m, A, F, const N: usize> {
+    model: Option<FlashModel<'m, N>>,
     machine: AlarmMachine,
     alarm: Line<A>,
     fault: Line<F>,
@@ -135,10 +148,10 @@ impl fmt::Display for Cause {
     }
 }
 
-impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
+impl<'m, A: OutputPin, F: OutputPin, const N: usize> Node<'m, A, F, N> {
     /// Check the slots, take the newest valid model, and drive both lines to their first levels:
     /// alarm off, and fault on if no slot holds a valid model. Reports every slot and pin.
-    pub fn boot(slots: &[Slot<'_>], alarm: Line<A>, fault: Line<F>, out: &mut impl Write) -> Self {
+    pub fn boot(slots: &[Slot<'m>], alarm: Line<A>, fault: Line<F>, out: &mut impl Write) -> Self {
         let chosen = slots::choose::<N>(slots, None, |slot, r| report_slot(out, slots, slot, r));
         let mut node = Self {
             model: None,
@@ -158,8 +171,8 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
     /// Put the chosen model (or none) in use, and report it.
     fn take(
         &mut self,
-        chosen: Option<Chosen<N>>,
-        slots: &[Slot<'_>],
+        chosen: Option<Chosen<'m, N>>,
+        slots: &[Slot<'m>],
         fell_back: bool,
         out: &mut impl Write,
     ) {
@@ -204,7 +217,7 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
     }
 
     /// The model in use, if any.
-    pub const fn model(&self) -> Option<&Model<N>> {
+    pub const fn model(&self) -> Option<&FlashModel<'m, N>> {
         self.model.as_ref()
     }
 
@@ -234,7 +247,7 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
         let model = self.model.as_ref()?;
         let index = self.index_base + self.machine.next_index();
         let scored = score(model, x);
-        let step = self.machine.update(&scored);
+        let step = alarm_update(&mut self.machine, &scored);
         let raised = step.events.iter().any(|e| e.kind == EventKind::Raised);
         let top = if raised {
             explain(model, x).ok().map(|e| e.top().0)
@@ -291,7 +304,7 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
     /// unconfirmed model faults on every reading of its probation.
     pub fn run_with_fallback<S: ReadingSource<N>>(
         &mut self,
-        slots: &[Slot<'_>],
+        slots: &[Slot<'m>],
         source: &mut S,
         out: &mut impl Write,
     ) -> Summary {
@@ -345,7 +358,7 @@ impl<A: OutputPin, F: OutputPin, const N: usize> Node<A, F, N> {
     /// Out of line: the slot check's frame (a decoded model among it) is then on the stack only
     /// while it runs, not under every score of the loop.
     #[inline(never)]
-    fn fall_back(&mut self, slots: &[Slot<'_>], at: u32, out: &mut impl Write) {
+    fn fall_back(&mut self, slots: &[Slot<'m>], at: u32, out: &mut impl Write) {
         let from = self.slot.map(|(i, _)| i);
         let _ = writeln!(
             out,

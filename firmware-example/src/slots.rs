@@ -34,7 +34,7 @@
 use core::cmp::Ordering;
 use core::fmt;
 
-use ellipsoid_core::{blob, DecodeError, Model};
+use ellipsoid_core::{blob, DecodeError, FlashModel};
 
 /// The confirmation mark: the word after the blob, as its four bytes `CONF` in flash.
 pub const CONFIRM_MARK: u32 = u32::from_le_bytes(*b"CONF");
@@ -174,12 +174,13 @@ impl fmt::Display for SlotError {
 
 impl core::error::Error for SlotError {}
 
-/// Validate and compile the blob at the start of `bytes`.
+/// Validate the blob at the start of `bytes` and keep a view of it in place: the model stays in
+/// flash, and only its centre and a few scalars are kept in RAM (see `ellipsoid_core::flash`).
 ///
 /// Never panics: every access is checked. Kept out of line so that the image check for panic
 /// machinery (see the README) can find this path by its symbol.
 #[inline(never)]
-pub fn load<const N: usize>(bytes: &[u8]) -> Result<Model<N>, SlotError> {
+pub fn load<const N: usize>(bytes: &[u8]) -> Result<FlashModel<'_, N>, SlotError> {
     let head = bytes.get(..blob::HEADER_LEN).unwrap_or(bytes);
     if head.iter().all(|b| *b == 0xFF) || head.iter().all(|b| *b == 0x00) {
         return Err(SlotError::Empty);
@@ -189,7 +190,7 @@ pub fn load<const N: usize>(bytes: &[u8]) -> Result<Model<N>, SlotError> {
         stated: header.len,
         capacity: bytes.len(),
     })?;
-    Model::from_blob(blob).map_err(SlotError::Blob)
+    FlashModel::from_blob(blob).map_err(SlotError::Blob)
 }
 
 /// What [`choose`] found in one slot.
@@ -232,12 +233,12 @@ pub enum TieKind {
 }
 
 /// The model chosen at boot.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Chosen<const N: usize> {
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Chosen<'a, const N: usize> {
     /// Index into the slots given to [`choose`].
     pub slot: usize,
-    /// The compiled model.
-    pub model: Model<N>,
+    /// The checked model, in place in its slot.
+    pub model: FlashModel<'a, N>,
     /// The blob's CRC-32.
     pub crc: u32,
     /// The chosen slot's confirmation word.
@@ -280,12 +281,12 @@ fn beats(a: &Candidate, b: &Candidate) -> (bool, Option<TieKind>) {
 /// model (see the module documentation for the rule), or `None` when no slot validates. Slots
 /// `skip` (an index) is passed over, as if unusable, without a report: the slot a node has fallen
 /// back from.
-pub fn choose<const N: usize>(
-    slots: &[Slot<'_>],
+pub fn choose<'a, const N: usize>(
+    slots: &[Slot<'a>],
     skip: Option<usize>,
-    mut report: impl FnMut(&Slot<'_>, &SlotReport),
-) -> Option<Chosen<N>> {
-    let mut best: Option<(Candidate, Model<N>)> = None;
+    mut report: impl FnMut(&Slot<'a>, &SlotReport),
+) -> Option<Chosen<'a, N>> {
+    let mut best: Option<(Candidate, FlashModel<'a, N>)> = None;
     let mut second: Option<Candidate> = None;
     for (i, slot) in slots.iter().enumerate() {
         if skip == Some(i) {

@@ -2,7 +2,9 @@
 //! truncation of a valid blob is rejected; random bytes never panic the decoder.
 
 use ellipsoid_core::blob::{self, DecodeError};
-use ellipsoid_core::{AlarmPolicy, Model, ModelMeta, ModelParams, Preprocess, Thresholds};
+use ellipsoid_core::{
+    AlarmPolicy, CompactModel, FlashModel, Model, ModelMeta, ModelParams, Preprocess, Thresholds,
+};
 use proptest::prelude::*;
 
 /// Any valid parameters of dimension N (finite values, positive diagonal and scales, ordered thresholds).
@@ -129,6 +131,43 @@ macro_rules! blob_props {
                     prop_assert!(blob::decode::<$n>(&longer).is_err());
                 }
             }
+
+            proptest! {
+                // Each case decodes every single-bit flip twice over (sealed and resealed), so
+                // fewer cases than above keep the suite's time in check.
+                #![proptest_config(ProptestConfig::with_cases(16))]
+
+                /// The flash-resident check refuses exactly what `decode` refuses, with the same
+                /// error: every single-bit flip, resealed with a correct CRC so that it reaches the
+                /// body and the rules, and the unsealed flips too. And what it accepts scores as
+                /// the full model does, to the bit.
+                #[test]
+                fn flash_check_matches_decode(p in params::<$n>(), x in proptest::array::uniform::<_, $n>(-2.0e3f32..2.0e3)) {
+                    let bytes = encode(&p);
+                    let flash = FlashModel::<$n>::from_blob(&bytes).unwrap();
+                    let full = Model::<$n>::from_blob(&bytes).unwrap();
+                    let compact = CompactModel::<$n, { ellipsoid_core::tri($n) }>::from_blob(&bytes).unwrap();
+                    let s = full.score(&x).map(|s| s.d2.to_bits());
+                    prop_assert_eq!(flash.score(&x).map(|s| s.d2.to_bits()), s);
+                    prop_assert_eq!(compact.score(&x).map(|s| s.d2.to_bits()), s);
+                    prop_assert_eq!(flash.meta(), full.meta());
+                    prop_assert_eq!(flash.policy(), full.policy());
+                    prop_assert_eq!(flash.thresholds(), full.thresholds());
+                    let body_end = bytes.len() - blob::CRC_LEN;
+                    for bit in 0..bytes.len() * 8 {
+                        let mut b = bytes.clone();
+                        b[bit / 8] ^= 1 << (bit % 8);
+                        prop_assert_eq!(FlashModel::<$n>::from_blob(&b).err(), blob::decode::<$n>(&b).err());
+                        if bit / 8 >= blob::HEADER_LEN && bit / 8 < body_end {
+                            let crc = blob::checksum(&b[..body_end]);
+                            b[body_end..].copy_from_slice(&crc.to_le_bytes());
+                            let want = blob::decode::<$n>(&b).map(|_| ());
+                            prop_assert_eq!(FlashModel::<$n>::from_blob(&b).map(|_| ()), want);
+                        }
+                    }
+                }
+
+            }
         }
     )*};
 }
@@ -159,6 +198,10 @@ proptest! {
         b.extend_from_slice(&body);
         let crc = blob::checksum(&b);
         b.extend_from_slice(&crc.to_le_bytes());
+        prop_assert_eq!(
+            FlashModel::<2>::from_blob(&b).map(|_| ()),
+            blob::decode::<2>(&b).map(|_| ())
+        );
         match blob::decode::<2>(&b) {
             Ok(p) => prop_assert!(p.validate().is_ok()),
             Err(e) => {

@@ -14,7 +14,7 @@
 //!   gives every pinned bit, while the reversed order or fused multiply-adds give other bits on
 //!   a good part of them.
 
-use ellipsoid_core::{blob, Model, ModelParams};
+use ellipsoid_core::{blob, tri, CompactModel, FlashModel, Model, ModelParams};
 use ellipsoid_tests::golden::{golden_n2, golden_n5};
 use ellipsoid_tests::pins::{self, fault_name, Expect, Pins};
 
@@ -202,10 +202,46 @@ fn agreeing<const N: usize>(pins: &Pins, m: &Model<N>, order: Order) -> (usize, 
     (same, scored.len())
 }
 
+/// The flash-resident and compact forms of the pinned blob reproduce every pin too, and agree with
+/// the full model to the bit on score, explain (every contribution) and log-density.
+fn other_forms_reproduce<const N: usize, const T: usize>(pins: &Pins, m: &Model<N>) {
+    let flash = FlashModel::<N>::from_blob(&pins.blob).expect("the pinned blob checks in place");
+    let compact = CompactModel::<N, T>::from_blob(&pins.blob).expect("and folds");
+    let bits = |r: Result<ellipsoid_core::Scored, ellipsoid_core::ReadingFault>| {
+        r.map(|s| (s.d2.to_bits(), s.verdict))
+    };
+    for pin in &pins.pins {
+        let x: [f32; N] = pin.x.clone().try_into().unwrap();
+        let want = bits(m.score(&x));
+        assert_eq!(bits(flash.score(&x)), want, "flash, reading {}", pin.index);
+        assert_eq!(
+            bits(compact.score(&x)),
+            want,
+            "compact, reading {}",
+            pin.index
+        );
+        let e = m.explain(&x).map(|e| e.contributions.map(f32::to_bits));
+        assert_eq!(
+            flash.explain(&x).map(|e| e.contributions.map(f32::to_bits)),
+            e
+        );
+        assert_eq!(
+            compact
+                .explain(&x)
+                .map(|e| e.contributions.map(f32::to_bits)),
+            e
+        );
+        let l = m.log_density(&x).map(f32::to_bits);
+        assert_eq!(flash.log_density(&x).map(f32::to_bits), l);
+        assert_eq!(compact.log_density(&x).map(f32::to_bits), l);
+    }
+}
+
 #[test]
 fn golden_n2_scores_are_pinned() {
     let (pins, m) = load(N2, &golden_n2());
     core_reproduces(&pins, &m);
+    other_forms_reproduce::<2, { tri(2) }>(&pins, &m);
     pins_are_the_true_d2(&pins, &golden_n2());
     let (same, all) = agreeing(&pins, &m, Order::Documented);
     assert_eq!(same, all, "the documented order");
@@ -215,6 +251,7 @@ fn golden_n2_scores_are_pinned() {
 fn golden_n5_scores_are_pinned() {
     let (pins, m) = load(N5, &golden_n5());
     core_reproduces(&pins, &m);
+    other_forms_reproduce::<5, { tri(5) }>(&pins, &m);
     pins_are_the_true_d2(&pins, &golden_n5());
 }
 

@@ -1,5 +1,8 @@
 //! `score-cost`: instructions per score on the board's core (the Cortex-M4F of `mps2-an386`, the
-//! Cortex-M0 of `microbit`) for N = 4, 8 and 16, and the stack a score uses. Run under `qemu-system-arm ... -icount shift=0`, where every instruction advances
+//! Cortex-M0 of `microbit`) for N = 4, 8 and 16, and the stack a
+//! score uses, for the three forms of a model: the compact folded form in RAM (`cost` lines, the
+//! one the target is for), the flash-resident view of a blob that the node uses (`cost_flash`),
+//! and the full decoded `Model` (`cost_model`). Run under `qemu-system-arm ... -icount shift=0`, where every instruction advances
 //! the virtual clock by the same amount, so SysTick counts instructions (the calibration below
 //! measures how many per tick).
 //!
@@ -15,7 +18,10 @@ mod image {
     use core::hint::black_box;
 
     use cortex_m_rt::entry;
-    use ellipsoid_core::{AlarmPolicy, Model, ModelMeta, ModelParams, Preprocess, Thresholds};
+    use ellipsoid_core::{
+        blob, fixed, tri, AlarmPolicy, CompactModel, FixedModel, FlashModel, Model, ModelMeta,
+        ModelParams, Preprocess, ReadingFault, Scored, Thresholds,
+    };
     use ellipsoid_firmware_example::board::selected::{self, Console};
     use ellipsoid_firmware_example::measure::{paint_stack, spin, stack_depth, stack_peak, Ticks};
     use ellipsoid_firmware_example::node;
@@ -59,32 +65,84 @@ mod image {
         p
     }
 
-    fn measure<const N: usize>(ticks: &Ticks, per_tick: f32, out: &mut Console) -> bool {
+    /// The compact form's score, out of line as `node::score` is for the flash form.
+    #[inline(never)]
+    fn score_compact<const N: usize, const T: usize>(
+        m: &CompactModel<N, T>,
+        x: &[f32; N],
+    ) -> Result<Scored, ReadingFault> {
+        m.score(x)
+    }
+
+    /// The fixed-point model's score of an integer reading, out of line.
+    #[inline(never)]
+    fn score_fixed<const N: usize, const T: usize>(m: &FixedModel<N, T>, r: &[i32; N]) -> Scored {
+        m.score(r)
+    }
+
+    /// The full model's score, out of line.
+    #[inline(never)]
+    fn score_model<const N: usize>(m: &Model<N>, x: &[f32; N]) -> Result<Scored, ReadingFault> {
+        m.score(x)
+    }
+
+    /// Time `REPS` scores of four rotating readings through `score`, and one score's stack.
+    /// Returns (ticks, instructions per score, stack bytes).
+    fn time<const N: usize, M>(
+        ticks: &Ticks,
+        per_tick: f32,
+        model: &M,
+        xs: &[[f32; N]; 4],
+        score: impl Fn(&M, &[f32; N]) -> Result<Scored, ReadingFault>,
+    ) -> (u32, f32, usize) {
+        let mut sum = 0.0f32;
+        let t0 = ticks.now();
+        for k in 0..REPS {
+            let x = black_box(&xs[(k & 3) as usize]);
+            if let Ok(s) = score(black_box(model), x) {
+                sum += s.d2;
+            }
+        }
+        let t1 = ticks.now();
+        black_box(sum);
+        let depth = stack_depth();
+        paint_stack();
+        black_box(score(black_box(model), black_box(&xs[0])).ok());
+        let stack = stack_peak().saturating_sub(depth);
+        let per_score = Ticks::elapsed(t0, t1) as f32 * per_tick / REPS as f32;
+        (Ticks::elapsed(t0, t1), per_score, stack)
+    }
+
+    fn measure<const N: usize, const T: usize>(
+        ticks: &Ticks,
+        per_tick: f32,
+        out: &mut Console,
+    ) -> bool {
         let mut rng = Lcg(0x2545_F491 ^ N as u32);
-        let model = match Model::<N>::new(params::<N>(&mut rng)) {
-            Ok(m) => m,
+        let params = params::<N>(&mut rng);
+        let mut buf = [0u8; blob::max_len(16)];
+        let blob = match blob::encode(&params, &mut buf) {
+            Ok(len) => &buf[..len],
             Err(e) => {
                 let _ = writeln!(out, "cost n={N} model refused: {e}");
                 return false;
             }
         };
+        let (Ok(model), Ok(flash)) = (Model::<N>::new(params), FlashModel::<N>::from_blob(blob))
+        else {
+            let _ = writeln!(out, "cost n={N} model refused");
+            return false;
+        };
+        let compact = flash.compact::<T>();
         let mut xs = [[0.0f32; N]; 4];
         for x in xs.iter_mut() {
             for (xi, c) in x.iter_mut().zip(model.center()) {
                 *xi = c + rng.next();
             }
         }
-        let mut sum = 0.0f32;
-        let t0 = ticks.now();
-        for k in 0..REPS {
-            let x = black_box(&xs[(k & 3) as usize]);
-            if let Ok(s) = node::score(black_box(&model), x) {
-                sum += s.d2;
-            }
-        }
-        let t1 = ticks.now();
         // The same loop around an out-of-line function that only reads one input: the loop's and
         // the call's own cost, for reference.
+        let mut sum = 0.0f32;
         let t2 = ticks.now();
         for k in 0..REPS {
             let x = black_box(&xs[(k & 3) as usize]);
@@ -92,23 +150,83 @@ mod image {
         }
         let t3 = ticks.now();
         black_box(sum);
-        let depth = stack_depth();
-        paint_stack();
-        black_box(node::score(black_box(&model), black_box(&xs[0])).ok());
-        let stack = stack_peak().saturating_sub(depth);
-        let per_score = Ticks::elapsed(t0, t1) as f32 * per_tick / REPS as f32;
         let overhead = Ticks::elapsed(t2, t3) as f32 * per_tick / REPS as f32;
         let floor = N * (N + 1) / 2 + 2 * N;
-        let _ = writeln!(
-            out,
-            "cost n={N} reps={REPS} ticks={} instr_per_score={per_score:.1} loop_overhead={overhead:.1} floor_ops={floor} instr_per_op={:.2}",
-            Ticks::elapsed(t0, t1),
-            per_score / floor as f32,
-        );
+        let (c_ticks, c_per, c_stack) = time(ticks, per_tick, &compact, &xs, score_compact);
+        let (f_ticks, f_per, f_stack) = time(ticks, per_tick, &flash, &xs, node::score);
+        let (m_ticks, m_per, m_stack) = time(ticks, per_tick, &model, &xs, score_model);
+        // The fixed-point model of the same parameters, on the same readings as integers.
+        let fixed_ok = match fixed::quantise::<N, T>(&params).map(FixedModel::new) {
+            Ok(Ok(fm)) => {
+                let mut rs = [[0i32; N]; 4];
+                for (r, x) in rs.iter_mut().zip(&xs) {
+                    *r = fm.reading(x).unwrap_or([0; N]);
+                }
+                let t0 = ticks.now();
+                let mut acc = 0u32;
+                for k in 0..REPS {
+                    let r = black_box(&rs[(k & 3) as usize]);
+                    acc ^= score_fixed(black_box(&fm), r).d2.to_bits();
+                }
+                let t1 = ticks.now();
+                black_box(acc);
+                let per = Ticks::elapsed(t0, t1) as f32 * per_tick / REPS as f32;
+                let _ = writeln!(
+                    out,
+                    "cost_fixed n={N} reps={REPS} ticks={} instr_per_score={per:.1} loop_overhead={overhead:.1} floor_ops={floor} instr_per_op={:.2} ram_bytes={}",
+                    Ticks::elapsed(t0, t1),
+                    per / floor as f32,
+                    core::mem::size_of::<FixedModel<N, T>>(),
+                );
+                true
+            }
+            _ => {
+                let _ = writeln!(out, "cost_fixed n={N} model could not be quantised");
+                false
+            }
+        };
+        // The three forms must agree to the bit, here on the device too.
+        let same = xs.iter().all(|x| {
+            let bits = |r: Result<Scored, ReadingFault>| r.map(|s| s.d2.to_bits());
+            let want = bits(model.score(x));
+            bits(flash.score(x)) == want && bits(compact.score(x)) == want
+        });
+        for (tag, t, per, stack, ram) in [
+            (
+                "cost",
+                c_ticks,
+                c_per,
+                c_stack,
+                core::mem::size_of::<CompactModel<N, T>>(),
+            ),
+            (
+                "cost_flash",
+                f_ticks,
+                f_per,
+                f_stack,
+                core::mem::size_of::<FlashModel<'_, N>>(),
+            ),
+            (
+                "cost_model",
+                m_ticks,
+                m_per,
+                m_stack,
+                core::mem::size_of::<Model<N>>(),
+            ),
+        ] {
+            let _ = writeln!(
+                out,
+                "{tag} n={N} reps={REPS} ticks={t} instr_per_score={per:.1} loop_overhead={overhead:.1} floor_ops={floor} instr_per_op={:.2} ram_bytes={ram} stack_bytes={stack}",
+                per / floor as f32,
+            );
+        }
         // Stack of one score below its caller's frame (the painter's and the reader's own small
         // frames sit in the same place, so this is an upper bound).
-        let _ = writeln!(out, "stack n={N} score_bytes={stack}");
-        true
+        let _ = writeln!(out, "stack n={N} score_bytes={c_stack}");
+        if !same {
+            let _ = writeln!(out, "cost n={N} the three forms disagree");
+        }
+        same && fixed_ok
     }
 
     #[inline(never)]
@@ -130,9 +248,9 @@ mod image {
             "calibrate instructions={} ticks={cal} instr_per_tick={per_tick:.3}",
             2 * SPIN
         );
-        let ok = measure::<4>(&ticks, per_tick, &mut out)
-            & measure::<8>(&ticks, per_tick, &mut out)
-            & measure::<16>(&ticks, per_tick, &mut out);
+        let ok = measure::<4, { tri(4) }>(&ticks, per_tick, &mut out)
+            & measure::<8, { tri(8) }>(&ticks, per_tick, &mut out)
+            & measure::<16, { tri(16) }>(&ticks, per_tick, &mut out);
         selected::exit(ok)
     }
 }

@@ -16,6 +16,7 @@
 //! board").
 
 use core::convert::Infallible;
+use core::fmt::Write as _;
 use core::ptr::{addr_of, read_volatile, write_volatile};
 
 use cortex_m_semihosting::hio;
@@ -132,6 +133,7 @@ pub fn take() -> Parts<Mps2An386, Led, Led> {
         }
         exit(false)
     };
+    guard_stack(&p.MPU);
     Parts {
         board: Mps2An386 {
             console: Console::new(),
@@ -181,4 +183,86 @@ impl<const N: usize> Board<N> for Mps2An386 {
     fn finish(self, ok: bool) -> ! {
         exit(ok)
     }
+}
+
+/// Bytes of the guard at the bottom of the stack region (`_stack_guard_len` in the memory map).
+const GUARD_LEN: u32 = 256;
+
+/// The stack guard: MPU region 0 makes the lowest 256 bytes of the stack region (the bottom of
+/// RAM, see the memory map) inaccessible, so the first push of an overflowing stack faults
+/// instead of writing over anything. (Below RAM this board has no bus error: the emulator reads
+/// zeros there and ignores writes, so the guard has to be the MPU's.) The rest of memory keeps
+/// the default map (`PRIVDEFENA`), and the firmware runs privileged.
+fn guard_stack(mpu: &cortex_m::peripheral::MPU) {
+    extern "C" {
+        static _stack_guard_start: u32;
+    }
+    // MPU_TYPE.DREGION: no regions, no MPU (a Cortex-M0 build of this board's images, used for
+    // measurements, runs on a part without one).
+    if (mpu._type.read() >> 8) & 0xFF == 0 {
+        return;
+    }
+    let base = addr_of!(_stack_guard_start) as u32;
+    // RASR: ENABLE, SIZE = log2(256) − 1 = 7, AP = 0b000 (no access), XN.
+    let rasr = 1 | (7 << 1) | (1 << 28);
+    // SAFETY: configuring the MPU before anything runs that the guard could affect; the guard is
+    // a region the memory map reserves for it and nothing else uses.
+    unsafe {
+        mpu.rnr.write(0);
+        mpu.rbar.write(base & !(GUARD_LEN - 1));
+        mpu.rasr.write(rasr);
+        // CTRL: ENABLE, PRIVDEFENA.
+        mpu.ctrl.write(1 | (1 << 2));
+    }
+    cortex_m::asm::dsb();
+    cortex_m::asm::isb();
+}
+
+// The HardFault handler. A stack overflow faults on the first push into the guard, and the
+// exception entry's own push of the frame fails too, so the handler cannot trust the stack
+// pointer: it first moves it back to the top of the stack region (nothing returns from here),
+// then reports the fault and ends the run. A field board would record the fault and reset instead.
+core::arch::global_asm!(
+    ".section .HardFault.user, \"ax\"",
+    ".global HardFault",
+    ".type HardFault, %function",
+    ".thumb_func",
+    "HardFault:",
+    "ldr r0, ={top}",
+    "msr msp, r0",
+    // A long branch (`bx`): `b` reaches only ±2 KiB on thumbv6m, whose image is built too.
+    "ldr r1, ={report}",
+    "bx r1",
+    ".ltorg",
+    top = sym _stack_start,
+    report = sym hard_fault_report,
+);
+
+extern "C" {
+    static _stack_start: u32;
+}
+
+/// Configurable and HardFault status and the MemManage fault address (System Control Block).
+const SCB_CFSR: usize = 0xE000_ED28;
+const SCB_HFSR: usize = 0xE000_ED2C;
+const SCB_MMFAR: usize = 0xE000_ED34;
+
+/// Report a HardFault on a fresh stack and end the run with a failure: `fault hard cfsr=...
+/// hfsr=... mmfar=...`. On a stack overflow CFSR shows a data access violation (bit 1, DACCVIOL)
+/// at an address in the guard, and a failed stacking of the exception frame (bit 4, MSTKERR).
+extern "C" fn hard_fault_report() -> ! {
+    // SAFETY: reading the System Control Block's fault registers has no side effect.
+    let (cfsr, hfsr, mmfar) = unsafe {
+        (
+            read_volatile(SCB_CFSR as *const u32),
+            read_volatile(SCB_HFSR as *const u32),
+            read_volatile(SCB_MMFAR as *const u32),
+        )
+    };
+    let mut out = Console::new();
+    let _ = writeln!(
+        out,
+        "fault hard cfsr={cfsr:#010x} hfsr={hfsr:#010x} mmfar={mmfar:#010x}"
+    );
+    exit(false)
 }

@@ -110,6 +110,7 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
     })?;
 
     let spec = TrainSpec {
+        no_fpu: false,
         baseline: files.baseline.clone(),
         csv: CsvOptions {
             quiet: true,

@@ -140,12 +140,18 @@ pub struct FitArgs {
     /// Print the summary as JSON.
     #[arg(long)]
     pub json: bool,
+    /// For a part without an FPU: quantise the model and write a fixed-point blob, scored with
+    /// integer arithmetic (core/FORMAT.md). Refused if it would move a verdict on the baseline;
+    /// the worst d² difference from the f32 model is printed. Not for log-transformed features.
+    #[arg(long)]
+    pub no_fpu: bool,
 }
 
 impl FitArgs {
     /// The training settings these arguments give.
     pub fn spec(&self) -> TrainSpec {
         TrainSpec {
+            no_fpu: self.no_fpu,
             baseline: self.baseline.clone(),
             csv: self.csv.options(None, false),
             log_columns: self.log_columns.clone(),
@@ -206,6 +212,12 @@ pub fn run(a: &FitArgs) -> Result<()> {
         println!("{}", serde_json::to_string_pretty(&summary_json(&t))?);
     } else {
         print!("{}", summary_text(&t));
+        for w in t.quantised.iter().flatten() {
+            println!(
+                "Fixed point (--no-fpu): {}: {} rows, worst |d² fixed − d² f32| = {:.3e} (line {}); no verdict moved on the baseline.",
+                w.rows, w.scored, w.worst, w.line
+            );
+        }
         println!(
             "Wrote {} and {}{}.",
             a.out.display(),

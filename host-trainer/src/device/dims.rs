@@ -151,7 +151,8 @@ macro_rules! with_dim {
 pub const MAX_DIM: usize = ellipsoid_core::MAX_FEATURES;
 
 use ellipsoid_core::{
-    blob, AlarmPolicy, DecodeError, Model, ModelMeta, ModelParams, ReadingFault, Scored, Thresholds,
+    blob, AlarmPolicy, DecodeError, FixedModel, Model, ModelMeta, ModelParams, ReadingFault,
+    Scored, Thresholds,
 };
 
 /// A decoded core model whose dimension is known only at run time.
@@ -266,13 +267,68 @@ impl<const N: usize> AnyModel for Model<N> {
     }
 }
 
+/// The fixed-point model (header flag bit 1): the same integer code as on a node without an FPU,
+/// fed with the documented conversion of each reading (`FixedModel::reading`).
+impl<const N: usize, const T: usize> AnyModel for FixedModel<N, T> {
+    fn n(&self) -> usize {
+        N
+    }
+    fn score(&self, x: &[f32]) -> Result<Scored, ReadingFault> {
+        FixedModel::score_f32(self, &fixed::<N>(x))
+    }
+    fn explain(&self, x: &[f32]) -> Result<(Scored, Vec<f32>, usize), ReadingFault> {
+        let r = self.reading(&fixed::<N>(x))?;
+        let e = FixedModel::explain(self, &r)?;
+        Ok((e.score, e.contributions.to_vec(), e.top().0))
+    }
+    fn log_density(&self, x: &[f32]) -> Result<f32, ReadingFault> {
+        // The density of the dequantised model (the view below), from the integer d².
+        let s = FixedModel::score_f32(self, &fixed::<N>(x))?;
+        let v = AnyModel::params(self);
+        let mut ln = -0.5 * N as f64 * 1.837_877_066_409_345_5;
+        for i in 0..N {
+            ln += f64::from(v.w[i * N + i]).ln();
+        }
+        Ok(ln as f32 - 0.5 * s.d2)
+    }
+    /// The quantised model as `f32` parameters: offset = `cⱼ · 2^−kⱼ`, scale 1, mean 0 and
+    /// `W = q · 2^(kⱼ − E)` (the folded factor in reading units).
+    fn params(&self) -> ParamsView {
+        let p = FixedModel::params(self);
+        let mut w = vec![0.0f32; N * N];
+        let mut k = 0;
+        for i in 0..N {
+            for j in 0..=i {
+                let e = i32::from(p.shift[j]) - i32::from(p.exponent);
+                w[i * N + j] = (f64::from(p.q[k]) * 2f64.powi(e)) as f32;
+                k += 1;
+            }
+        }
+        ParamsView {
+            meta: p.meta,
+            log_mask: 0,
+            offset: (0..N)
+                .map(|j| (f64::from(p.center[j]) * 2f64.powi(-i32::from(p.shift[j]))) as f32)
+                .collect(),
+            scale: vec![1.0; N],
+            mean: vec![0.0; N],
+            w,
+            thresholds: p.thresholds.get(),
+            policy: p.policy,
+        }
+    }
+    fn ram_bytes(&self) -> usize {
+        core::mem::size_of::<FixedModel<N, T>>()
+    }
+}
+
 /// Read and decode a blob file, with errors that name the file (and say plainly when the blob's
 /// dimension is one no `Model<N>` exists for).
 pub fn decode_file(path: &std::path::Path) -> anyhow::Result<(Vec<u8>, Box<dyn AnyModel>)> {
     use std::io::Read as _;
     // Read no more than the largest blob and one byte: `/dev/zero` or a log named by mistake
     // is refused at once instead of being read whole.
-    let limit = blob::max_len(MAX_DIM);
+    let limit = blob::max_len(MAX_DIM).max(ellipsoid_core::fixed::max_len(MAX_DIM));
     let mut bytes = Vec::new();
     std::fs::File::open(path)
         .and_then(|f| f.take(limit as u64 + 1).read_to_end(&mut bytes))
@@ -299,8 +355,14 @@ pub fn decode_file(path: &std::path::Path) -> anyhow::Result<(Vec<u8>, Box<dyn A
 pub fn decode_any(bytes: &[u8]) -> Result<Box<dyn AnyModel>, DecodeError> {
     let header = blob::Header::parse(bytes)?;
     let n = usize::from(header.n);
+    let fixed_point = header.flags & blob::FLAG_FIXED != 0;
     with_dim!(n, N => {
-        Model::<N>::from_blob(bytes).map(|m| Box::new(m) as Box<dyn AnyModel>)
+        if fixed_point {
+            FixedModel::<N, { ellipsoid_core::tri(N) }>::from_blob(bytes)
+                .map(|m| Box::new(m) as Box<dyn AnyModel>)
+        } else {
+            Model::<N>::from_blob(bytes).map(|m| Box::new(m) as Box<dyn AnyModel>)
+        }
     })
     // A dimension outside 1..=32 has no `Model<N>`; report it with the largest one supported.
     .unwrap_or(Err(DecodeError::Dimension {

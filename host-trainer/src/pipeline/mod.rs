@@ -7,5 +7,6 @@ pub mod evaluate;
 pub mod fit_report;
 pub mod fleet;
 pub mod limits;
+pub mod quantise;
 pub mod summary;
 pub mod train;

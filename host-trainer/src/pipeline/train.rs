@@ -26,6 +26,8 @@ use crate::stats::threshold::{Candidates, Method, Target, SECONDS_PER_DAY};
 /// What to train: the settings of `ellipsoid fit` that shape the model, without its outputs.
 #[derive(Clone, Debug)]
 pub struct TrainSpec {
+    /// Quantise for a part without an FPU (`fit --no-fpu`): the blob is the fixed-point model.
+    pub no_fpu: bool,
     /// Baseline CSV of healthy operation.
     pub baseline: PathBuf,
     /// How the baseline is read.
@@ -107,6 +109,8 @@ pub fn poisson_upper95(k: u64) -> f64 {
 
 /// Everything `fit` works out.
 pub struct Trained {
+    /// With `no_fpu`: the worst d² differences of the quantised model from the `f32` one.
+    pub quantised: Option<Vec<crate::pipeline::quantise::Worst>>,
     /// The fitted statistics.
     pub fitted: Fitted,
     /// Every candidate threshold.
@@ -401,6 +405,20 @@ pub fn train_with(
         clear: (alarm * a.clear_fraction) as f32,
     };
     let (blob_bytes, model) = build_blob(&fitted, thresholds, policy, meta)?;
+    let (blob_bytes, model, quantised) = if a.no_fpu {
+        let q = crate::pipeline::quantise::quantise(
+            &fitted,
+            model.as_ref(),
+            thresholds,
+            policy,
+            meta,
+            &a.baseline,
+            a.validation.as_deref(),
+        )?;
+        (q.blob, q.model, Some(q.worst))
+    } else {
+        (blob_bytes, model, None)
+    };
     let holdout = (!fitted.holdout_d2.is_empty()).then(|| {
         check_holdout(
             &fitted.holdout_d2,
@@ -431,6 +449,7 @@ pub fn train_with(
         trained_on: a.baseline.display().to_string(),
     };
     Ok(Trained {
+        quantised,
         fitted,
         candidates,
         promise,
