@@ -45,20 +45,15 @@
 use anyhow::{bail, ensure, Result};
 use ellipsoid_core::MAX_FEATURES;
 
-use super::check::{f32_check, HoldoutOut};
-use super::estimate::{condition, estimate, inverse_factor, Estimate};
+use super::check::HoldoutOut;
 use super::outliers::{any_gross, drop_gross, short, Extremes, Gate};
 use super::read::Gathered;
 use super::sample::{mix, Sample};
 use super::standardise::Standardise;
-use super::{
-    label_like, transform_rows, FitOptions, Fitted, Shrinkage, BLOCK_ROWS, SAMPLE_ROWS,
-    SAMPLE_SEED, WARN_CONDITION, WARN_F32_REL,
-};
+use super::{transform_rows, FitOptions, Fitted, Shrinkage, BLOCK_ROWS, SAMPLE_ROWS, SAMPLE_SEED};
 use crate::data::ingest::KEEP_REASONS;
 use crate::stats::autocorr::{Lag1, Lag1Set};
-use crate::stats::diagnostics;
-use crate::stats::moments::{correlation_of, Moments};
+use crate::stats::moments::Moments;
 
 /// Rows in memory: `values` is row-major, `rows × features.len()`, in time order.
 #[derive(Clone, Copy, Debug)]
@@ -311,121 +306,27 @@ fn score_rows(
     Ok(out)
 }
 
-/// The steps of `fit_file` after the training rows are gathered: the checks, the estimate, the
-/// factor, the diagnostics, the `f32` check and the hold-out.
+/// The steps of a fit after the training rows are gathered: the file fit's own
+/// ([`super::finish_fit`]), with the held-out rows scored from memory.
 fn finish(
     t: &Table<'_>,
     log_mask: u32,
     opts: &FitOptions,
-    mut gathered: Gathered,
+    gathered: Gathered,
     sample_rows: Vec<f64>,
     gross_lines: Vec<u64>,
     holdout: Option<(&Table<'_>, std::ops::Range<usize>)>,
 ) -> Result<Fitted> {
-    let file = t.name.to_string();
-    let p = t.p();
-    let n = gathered.moments.n;
-    let lag1 = {
-        let diag: Vec<f64> = (0..p).map(|i| gathered.moments.comoment(i, i)).collect();
-        gathered.lag.rho(&gathered.moments.mean(), &diag)
-    };
-    let sample_corr = gathered.moments.correlation();
-    let mut warnings = Vec::new();
-    label_like(t.features, &sample_rows, &mut warnings);
-    if n < p as u64 + 1 {
-        bail!(
-            "{file}: only {n} usable training row(s) for {p} feature(s); at least {} are needed",
-            p + 1
-        );
-    }
-    if n < 10 * p as u64 {
-        warnings.push(format!(
-            "only {n} training rows for {p} features (fewer than 10 per feature): the covariance is poorly determined; consider shrinkage"
-        ));
-    }
-    if gathered.skipped > 0 {
-        warnings.push(format!("{} bad training row(s) skipped", gathered.skipped));
-    }
-    let Estimate {
-        mean,
-        cov,
-        shrinkage,
-        mut robust,
-    } = estimate(
-        &file,
+    super::finish_fit(
+        t.name.to_string(),
         t.features,
-        &mut gathered,
-        opts.robust,
-        opts.shrinkage,
-        &mut warnings,
-    )?;
-    if let Some(r) = robust.as_mut().filter(|_| !gross_lines.is_empty()) {
-        r.set_aside_lines.extend(&gross_lines);
-        r.set_aside_lines.sort_unstable();
-    }
-    let sd: Vec<f64> = (0..p).map(|i| cov[i * p + i].sqrt()).collect();
-    let corr = correlation_of(&cov, p);
-    let w = inverse_factor(&file, t.features, &corr)?;
-    let condition_number = condition(&corr, p);
-    if condition_number > WARN_CONDITION {
-        warnings.push(format!(
-            "the correlation matrix is ill-conditioned (condition number {condition_number:.3e}); the device's f32 scores may lose precision; consider shrinkage or dropping a redundant sensor"
-        ));
-    }
-    let m = sample_rows.len() / p.max(1);
-    let t_rows = transform_rows(&sample_rows, p, log_mask);
-    let st = Standardise {
         log_mask,
-        mean: &mean,
-        sd: &sd,
-        w: &w,
-    };
-    let features = t.features;
-    let (diagnostics, worst, hold) = std::thread::scope(|s| {
-        let diag = s.spawn(|| diagnostics::diagnose(&t_rows, m, p, &mean, &cov, features));
-        let worst = f32_check(st, &sample_rows);
-        let hold = holdout
-            .map(|(ht, rows)| score_rows(ht, rows, opts, st))
-            .transpose();
-        let diag = diag.join().expect("the diagnostics thread panicked");
-        (diag, worst, hold)
-    });
-    let worst = worst.map_err(|e| e.context(file.clone()))?;
-    let hold = hold?;
-    if worst > WARN_F32_REL {
-        warnings.push(format!(
-            "the device's f32 d² differs from the f64 reference by up to {:.2} % on the training sample",
-            worst * 100.0
-        ));
-    }
-    let mut fitted = Fitted {
-        file,
-        features: t.features.to_vec(),
-        log_mask,
-        rows_used: n + gross_lines.len() as u64,
-        rows_skipped: gathered.skipped,
-        skipped_reasons: gathered.reasons,
-        rows_holdout: 0,
-        mean,
-        sd,
-        cov,
-        corr,
-        condition_number,
-        shrinkage,
-        robust,
-        diagnostics,
-        w,
-        holdout_d2: Vec::new(),
-        holdout_lines: Vec::new(),
-        f32_vs_f64_worst_rel: worst,
-        warnings,
-        lag1,
-        sample_corr,
-    };
-    if let Some(h) = hold {
-        fitted.add_holdout(h);
-    }
-    Ok(fitted)
+        opts,
+        gathered,
+        sample_rows,
+        gross_lines,
+        |st| holdout.map(|(ht, rows)| score_rows(ht, rows, opts, st)),
+    )
 }
 
 /// The statistics of a set of rows that a fit needs and that merge: count, mean and co-moment

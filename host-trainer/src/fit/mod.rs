@@ -267,6 +267,37 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
         }
     }
 
+    finish_fit(
+        file,
+        &layout.features,
+        log_mask,
+        opts,
+        gathered,
+        sample_rows,
+        gross_lines,
+        |st| {
+            holdout_at
+                .map(|(at, first_line)| score_holdout(path, &layout, opts, at, first_line, st))
+        },
+    )
+}
+
+/// The steps of a fit after its training rows are gathered, shared by the file fit and the fit of
+/// rows in memory: the checks, the estimate, the factor, the diagnostics, the `f32` check and the
+/// hold-out (`score_held_out` scores it through the core, on the calling thread, while the
+/// distribution checks run on another).
+#[allow(clippy::too_many_arguments)]
+fn finish_fit(
+    file: String,
+    features: &[String],
+    log_mask: u32,
+    opts: &FitOptions,
+    mut gathered: read::Gathered,
+    sample_rows: Vec<f64>,
+    gross_lines: Vec<u64>,
+    score_held_out: impl FnOnce(Standardise<'_>) -> Option<Result<check::HoldoutOut>>,
+) -> Result<Fitted> {
+    let p = features.len();
     let n = gathered.moments.n;
     let lag1 = {
         let diag: Vec<f64> = (0..p).map(|i| gathered.moments.comoment(i, i)).collect();
@@ -274,7 +305,7 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
     };
     let sample_corr = gathered.moments.correlation();
     let mut warnings = Vec::new();
-    label_like(&layout.features, &sample_rows, &mut warnings);
+    label_like(features, &sample_rows, &mut warnings);
     if n < p as u64 + 1 {
         bail!(
             "{file}: only {n} usable training row(s) for {p} feature(s); at least {} are needed",
@@ -297,7 +328,7 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
         mut robust,
     } = estimate(
         &file,
-        &layout.features,
+        features,
         &mut gathered,
         opts.robust,
         opts.shrinkage,
@@ -309,7 +340,7 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
     }
     let sd: Vec<f64> = (0..p).map(|i| cov[i * p + i].sqrt()).collect();
     let corr = correlation_of(&cov, p);
-    let w = inverse_factor(&file, &layout.features, &corr)?;
+    let w = inverse_factor(&file, features, &corr)?;
     let condition_number = condition(&corr, p);
     if condition_number > WARN_CONDITION {
         warnings.push(format!(
@@ -329,11 +360,9 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
         w: &w,
     };
     let (diagnostics, worst, hold) = std::thread::scope(|s| {
-        let diag = s.spawn(|| diagnostics::diagnose(&t_rows, m, p, &mean, &cov, &layout.features));
+        let diag = s.spawn(|| diagnostics::diagnose(&t_rows, m, p, &mean, &cov, features));
         let worst = f32_check(st, &sample_rows);
-        let hold = holdout_at
-            .map(|(at, first_line)| score_holdout(path, &layout, opts, at, first_line, st))
-            .transpose();
+        let hold = score_held_out(st).transpose();
         let diag = diag.join().expect("the diagnostics thread panicked");
         (diag, worst, hold)
     });
@@ -347,7 +376,7 @@ pub fn fit_file(path: &Path, opts: &FitOptions) -> Result<Fitted> {
     }
     let mut fitted = Fitted {
         file: file.clone(),
-        features: layout.features.clone(),
+        features: features.to_vec(),
         log_mask,
         rows_used: n + gross_lines.len() as u64,
         rows_skipped: gathered.skipped,
