@@ -82,6 +82,7 @@ fn spec_from(source: &str, opts: Option<&Bound<'_, PyDict>>) -> PyResult<TrainSp
             independent_rows: false,
         },
         strict_baseline: false,
+        no_fpu: false,
     };
     let mut shrinkage = "none".to_string();
     let mut loading = 0.01f64;
@@ -110,6 +111,7 @@ fn spec_from(source: &str, opts: Option<&Bound<'_, PyDict>>) -> PyResult<TrainSp
             "simulation_seed" => s.limits.seed = v.extract()?,
             "independent_rows" => s.limits.independent_rows = v.extract()?,
             "strict_baseline" => s.strict_baseline = v.extract()?,
+            "no_fpu" => s.no_fpu = v.extract()?,
             "alarms_per_day" => s.alarms_per_day = v.extract()?,
             "rate_hz" => s.rate_hz = v.extract()?,
             "alpha" => s.alpha = Some(v.extract()?),

@@ -144,6 +144,7 @@ def fit(
     trained_at: Optional[int] = None,
     skip_bad_rows: bool = False,
     report: bool = False,
+    no_fpu: bool = False,
 ) -> "Model":
     """Fit a model of healthy operation to ``data`` (rows in time order), as ``ellipsoid fit`` does.
 
@@ -172,6 +173,7 @@ def fit(
         alpha=alpha, validation=validation, label_column=label_column, raise_after=raise_after,
         clear_after=clear_after, clear_fraction=clear_fraction, latch=latch, model_id=model_id,
         sequence=sequence, trained_at=trained_at, skip_bad_rows=skip_bad_rows, report=report,
+        no_fpu=no_fpu,
     )
     return Model._wrap(_ellipsoid.fit_rows_py(arr, names, source, opts))
 
