@@ -80,6 +80,9 @@ fn each_machine_model_is_the_plain_fit_of_its_rows() {
     let alone = write_log(dir.path());
     let out = dir.path().join("fleet");
     std::fs::create_dir(&out).unwrap();
+    // A blob an earlier run wrote for the machine that fails this time: it must not stay where
+    // `*.blob` would take it for this run's model.
+    std::fs::write(out.join("tiny.blob"), b"earlier run").unwrap();
     let assert = ellipsoid()
         .args([
             "fit",
@@ -113,6 +116,17 @@ fn each_machine_model_is_the_plain_fit_of_its_rows() {
             );
             assert!(err.contains("log.csv"), "the message names the log: {err}");
             assert!(!out.join("tiny.blob").exists());
+            assert_eq!(
+                std::fs::read(out.join("tiny.blob.previous")).unwrap(),
+                b"earlier run"
+            );
+            let warned = m["warnings"].as_array().unwrap();
+            assert!(
+                warned
+                    .iter()
+                    .any(|w| w.as_str().unwrap().contains("renamed")),
+                "{m}"
+            );
             continue;
         }
         assert!(m["error"].is_null(), "{m}");
@@ -134,13 +148,16 @@ fn each_machine_model_is_the_plain_fit_of_its_rows() {
         assert!(m["threshold"].as_f64().unwrap() > 0.0);
         assert!(m["holdout_alarms_per_day"].as_f64().is_some());
     }
-    let names: Vec<&str> = machines
-        .iter()
-        .map(|m| m["blob"].as_str().unwrap())
-        .collect();
+    let names: Vec<Option<&str>> = machines.iter().map(|m| m["blob"].as_str()).collect();
+    // The failed machine names no blob: none was written for it.
     assert_eq!(
         names,
-        ["pump_A.blob", "pump-b.blob", "site_3.blob", "tiny.blob"]
+        [
+            Some("pump_A.blob"),
+            Some("pump-b.blob"),
+            Some("site_3.blob"),
+            None
+        ]
     );
     let summary = std::fs::read_to_string(out.join("fleet.csv")).unwrap();
     assert_eq!(summary.lines().count(), 5);
@@ -167,7 +184,8 @@ fn each_machine_model_is_the_plain_fit_of_its_rows() {
             "pump_A.blob",
             "pump_A.json",
             "site_3.blob",
-            "site_3.json"
+            "site_3.json",
+            "tiny.blob.previous"
         ]
     );
 }

@@ -45,8 +45,8 @@ pub struct FitArgs {
     /// card per machine, `fleet.csv` and `fleet.html`, in the `--out` folder.
     #[arg(long, value_name = "COLUMN")]
     pub by: Option<String>,
-    /// With `--by`: if any machine's fit fails, write nothing (by default the others are written
-    /// and the failure is listed in the fleet summary).
+    /// With `--by`: if any machine's fit fails, write nothing (by default the others are written,
+    /// the failure is listed in the fleet summary, and the exit status is 3).
     #[arg(long, requires = "by")]
     pub stop_on_bad_machine: bool,
     #[command(flatten)]
@@ -277,6 +277,9 @@ fn run_fleet(a: &FitArgs, by: &str) -> Result<()> {
     }
     match run.failed() {
         0 => Ok(()),
+        n if n == run.machines.len() => anyhow::bail!(
+            "none of the {n} machines could be fitted (fleet.csv lists why); no model was written"
+        ),
         n => Err(super::common::Partial(format!(
             "{n} of {} machines could not be fitted (listed in fleet.csv); the others were written",
             run.machines.len()

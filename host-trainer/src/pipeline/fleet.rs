@@ -23,7 +23,7 @@
 //! The parts cost disk space about the size of the log as text; they are removed at the end.
 
 use std::collections::HashMap;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
 use std::sync::Mutex;
 
@@ -58,8 +58,9 @@ pub struct FleetSpec {
 pub struct MachineLine {
     /// The machine id, as in the log.
     pub machine: String,
-    /// The blob's file name in the output folder (the card is the same with `.json`).
-    pub blob: String,
+    /// The blob's file name in the output folder (the card is the same with `.json`); `None` when
+    /// the fit failed and no blob was written.
+    pub blob: Option<String>,
     /// Rows of this machine in the log.
     pub rows: u64,
     /// Rows fitted (the rest is the held-out tail, or skipped).
@@ -256,7 +257,7 @@ pub fn fit_fleet(spec: &FleetSpec) -> Result<FleetRun> {
                 one.csv = csv.clone();
                 let mut line = MachineLine {
                     machine: part.id.clone(),
-                    blob: format!("{}.blob", stems[k]),
+                    blob: None,
                     rows: part.rows,
                     rows_fitted: 0,
                     threshold: None,
@@ -269,6 +270,7 @@ pub fn fit_fleet(spec: &FleetSpec) -> Result<FleetRun> {
                     Ok(mut t) => {
                         t.card.trained_on = format!("{} ({} = {})", split.file, spec.by, part.id);
                         t.baseline = t.card.trained_on.clone();
+                        line.blob = Some(format!("{}.blob", stems[k]));
                         line.rows_fitted = t.fitted.rows_used;
                         line.threshold = Some(t.thresholds.alarm);
                         line.holdout_alarms_per_day =
@@ -324,6 +326,8 @@ pub fn fit_fleet(spec: &FleetSpec) -> Result<FleetRun> {
             );
         }
     }
+    let mut run = run;
+    set_aside_stale(&mut run, dir, &stems);
     let mut outputs = outputs.into_inner().expect("outputs lock");
     outputs.stage(&dir.join(SUMMARY_CSV), |w| summary_csv(&run, w))?;
     let html = render_fleet(
@@ -336,12 +340,41 @@ pub fn fit_fleet(spec: &FleetSpec) -> Result<FleetRun> {
     Ok(run)
 }
 
+/// A machine that failed in this run may have a blob and card from an earlier run in the folder:
+/// rename them to `….previous`, so that nothing that takes `*.blob` from the folder ships a model
+/// this run did not make, and say so in the machine's warnings.
+fn set_aside_stale(run: &mut FleetRun, dir: &Path, stems: &[String]) {
+    for (m, stem) in run.machines.iter_mut().zip(stems) {
+        if m.blob.is_some() {
+            continue;
+        }
+        for ext in ["blob", "json"] {
+            let old = dir.join(format!("{stem}.{ext}"));
+            if !old.exists() {
+                continue;
+            }
+            let aside = dir.join(format!("{stem}.{ext}.previous"));
+            match std::fs::rename(&old, &aside) {
+                Ok(()) => m.warnings.push(format!(
+                    "{} from an earlier run renamed to {}: this run made no model for the machine",
+                    old.display(),
+                    aside.display()
+                )),
+                Err(e) => m.warnings.push(format!(
+                    "{} from an earlier run could not be renamed ({e}): it is NOT this run's model",
+                    old.display()
+                )),
+            }
+        }
+    }
+}
+
 fn overview_lines(run: &FleetRun) -> Vec<FleetLine> {
     run.machines
         .iter()
         .map(|m| FleetLine {
             machine: m.machine.clone(),
-            blob: m.blob.clone(),
+            blob: m.blob.clone().unwrap_or_default(),
             rows: m.rows,
             rows_fitted: m.rows_fitted,
             threshold: m.threshold.map(f64::from),
@@ -371,11 +404,7 @@ pub fn summary_csv(run: &FleetRun, w: &mut dyn std::io::Write) -> Result<()> {
     for m in &run.machines {
         c.write_record([
             m.machine.clone(),
-            if m.error.is_some() {
-                String::new()
-            } else {
-                m.blob.clone()
-            },
+            m.blob.clone().unwrap_or_default(),
             m.rows.to_string(),
             m.rows_fitted.to_string(),
             m.threshold.map_or(String::new(), |t| t.to_string()),
