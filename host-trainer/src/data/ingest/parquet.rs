@@ -26,7 +26,7 @@ use super::cell::{parse_label, shown};
 use super::layout::{resolve_roles, Roles};
 use super::{CsvOptions, IngestError, Layout, Row, KEEP_REASONS};
 
-/// Does `path` hold a Parquet file (`PAR1` at both ends)? `false` if it cannot be read.
+/// Does `path` hold a Parquet file (`PAR1` at its start or its end)? `false` if it cannot be read.
 pub fn is_parquet(path: &Path) -> bool {
     let check = || -> std::io::Result<bool> {
         let mut f = File::open(path)?;
@@ -39,7 +39,9 @@ pub fn is_parquet(path: &Path) -> bool {
         f.seek(SeekFrom::End(-4))?;
         let mut tail = [0u8; 4];
         f.read_exact(&mut tail)?;
-        Ok(&head == b"PAR1" && &tail == b"PAR1")
+        // A file that starts as Parquet is read as Parquet, so that one cut short (no footer)
+        // is refused as such, not misread as a CSV.
+        Ok(&head == b"PAR1" || &tail == b"PAR1")
     };
     check().unwrap_or(false)
 }
