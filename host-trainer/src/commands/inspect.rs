@@ -48,12 +48,20 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
         .and_then(|at| bytes.get(at..))
         .and_then(|b| <[u8; 4]>::try_from(b).ok())
         .map_or(0, u32::from_le_bytes);
+    // Header flag bit 1 (`core/FORMAT.md`): the model is scored in fixed point (`fit --no-fpu`).
+    let fixed = bytes.get(6).is_some_and(|f| f & 0b10 != 0);
+    let (arithmetic, form) = if fixed {
+        ("fixed-point", format!("FixedModel<{n}>"))
+    } else {
+        ("f32", format!("Model<{n}>"))
+    };
     if as_json {
         let v = json!({
             "file": path.display().to_string(),
             "valid": true,
             "blob_bytes": bytes.len(),
             "decoded_model_ram_bytes": model.ram_bytes(),
+            "arithmetic": arithmetic,
             "features": names,
             "dimension": n,
             "model_id": p.meta.model_id,
@@ -83,10 +91,19 @@ pub fn run(path: &Path, as_json: bool) -> Result<()> {
         path.display()
     );
     println!(
-        "  {} bytes; decoded, the model takes {} bytes of RAM (size_of Model<{n}>)",
+        "  {} bytes; decoded, the model takes {} bytes of RAM (size_of {form})",
         bytes.len(),
         model.ram_bytes()
     );
+    if fixed {
+        println!(
+            "  arithmetic: fixed point (header flag bit 1, `fit --no-fpu`): readings enter as integers, no floating-point operation on the score path"
+        );
+    } else {
+        println!(
+            "  arithmetic: f32; the node firmware scores it in place in flash (FlashModel<{n}>, no copy of the parameters in RAM)"
+        );
+    }
     println!(
         "  identity: CRC-32 {crc:#010x} (the device reports it as crc=; it changes with any byte)"
     );
