@@ -1382,9 +1382,8 @@ fn core_flash_figures(s: &mut String, cost: &str, dev: &str, groups: &str) -> Re
     writeln!(s, "`opt-level = 3` (both the plain and the log-feature preprocessing are in it); `slots::load` is the header,")?;
     writeln!(s, "CRC, varint and rule checks inlined together. Two cuts were made while this was measured: the CRC is")?;
     writeln!(s, "computed bitwise (its 1 KiB table is gone; a blob is checked once, at boot), and boot no longer computes")?;
-    writeln!(s, "the log-normaliser, whose `f64` logarithm pulled software double-precision and libm into the decode path")?;
-    writeln!(s, "(decode and validate went from 9 396 to 5 494 bytes, the union from 13 324 to 9 486, at N = 8). No")?;
-    writeln!(s, "formatting or panic code is reachable from these entries (the `reach` check below); the `Display` impls")?;
+    writeln!(s, "the log-normaliser, whose `f64` logarithm pulled software double-precision and libm into the decode path.")?;
+    writeln!(s, "No formatting or panic code is reachable from these entries (the `reach` check below); the `Display` impls")?;
     writeln!(s, "are only used by the console report. The rest of the gap is the unrolled score and the inlined checks.\n")?;
     Ok(())
 }
@@ -1463,7 +1462,7 @@ fn figures(
     writeln!(s, "scores it in place through a `FlashModel<5>` (72 bytes on the stack of `main`; see below).\n")?;
     writeln!(s, "**Stack.** The stack below the stack pointer is painted with a pattern before the scoring loop, and")?;
     writeln!(s, "the deepest word overwritten is found afterwards. Peak while scoring the demo's readings (boot,")?;
-    writeln!(s, "decoded model, scoring, explaining raised alarms and formatting the report included): **{peak} bytes**.")?;
+    writeln!(s, "choosing the model in its slot, scoring, explaining raised alarms and formatting the report included): **{peak} bytes**.")?;
     writeln!(s, "The stack of one score alone (below its caller's frame, measured the same way in `score-cost`) is in the")?;
     writeln!(s, "last column of the table below.\n")?;
     writeln!(s, "**Cost per score on the Cortex-M4F** (`score-cost` in `qemu-system-arm -machine mps2-an386 -icount shift=0`).")?;
