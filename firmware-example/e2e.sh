@@ -62,6 +62,14 @@ $TOOL damage --input "$BLOB_A" --mode torn --out "$W/a-torn.blob"
 $TOOL damage --input "$BLOB_B" --mode torn --out "$W/b-torn.blob"
 replay "$BLOB_A" "$READINGS" "$W/replay-a.csv"
 replay "$BLOB_B" "$READINGS" "$W/replay-b.csv"
+# --- fixed point on the node: the demo baseline fitted for parts without an FPU (header flag bit 1) ---
+BLOB_FX="$W/model-fixed.blob"
+$ELLIPSOID fit "$W/demo/baseline.csv" --no-fpu --out "$BLOB_FX" --sequence 3 --trained-at 1772452800 \
+  >"$W/fit-fixed.txt"
+grep "^Fixed point (--no-fpu)" "$W/fit-fixed.txt"
+$TOOL damage --input "$BLOB_FX" --mode flip --out "$W/fixed-flipped.blob"
+replay "$BLOB_FX" "$READINGS" "$W/replay-fixed.csv"
+# --- end of fixed point ---
 
 say "2. the firmware, release"
 FW="cargo build -q --profile firmware -p ellipsoid-firmware-example"
@@ -117,6 +125,34 @@ if $TOOL compare --device "$W/tampered.log" --replay "$W/replay-a.csv" --reading
 fi
 grep -q "d2 bits device" "$W/tampered.out" || fail "compare refused the tampered log for another reason"
 echo "refused, as it must be: $(grep -m1 MISMATCH "$W/tampered.out")"
+
+# --- fixed point on the node (AN386): the integer path, bit-identical to replay ---
+say "4f. a fixed-point blob in slot A: device against replay, and a flipped bit refused"
+# shellcheck disable=SC2046
+run fixed-a "$ELF" $(load "$BLOB_FX" "$SLOT_A") $(load "$W/readings.bin" "$TABLE")
+grep -q "^model slot=A .* arith=fixed$" "$W/fixed-a.log" || fail "the node did not take slot A as a fixed-point model"
+$TOOL compare --device "$W/fixed-a.log" --replay "$W/replay-fixed.csv" --readings "$READINGS" \
+  --slot A | sed 's/^/fixed point (--no-fpu) in slot A, B empty: /' | tee -a "$W/compared.txt"
+awk '!done && $1 == "r" && match($0, /d2=[0-9a-f]+/) {
+  hex = "0123456789abcdef"; i = index(hex, substr($0, RSTART + 10, 1)) - 1
+  j = (i % 2 == 0) ? i + 1 : i - 1
+  $0 = substr($0, 1, RSTART + 9) substr(hex, j + 1, 1) substr($0, RSTART + 11); done = 1
+} { print }' "$W/fixed-a.log" >"$W/fixed-tampered.log"
+cmp -s "$W/fixed-a.log" "$W/fixed-tampered.log" && fail "the tampered fixed-point log is unchanged"
+if $TOOL compare --device "$W/fixed-tampered.log" --replay "$W/replay-fixed.csv" --readings "$READINGS" \
+    --slot A >"$W/fixed-tampered.out" 2>&1; then
+  fail "compare accepted a fixed-point log with a changed d² bit"
+fi
+grep -q "d2 bits device" "$W/fixed-tampered.out" || fail "compare refused the tampered fixed-point log for another reason"
+echo "refused, as it must be: $(grep -m1 MISMATCH "$W/fixed-tampered.out")"
+# One bit flipped in the fixed-point blob: the slot is refused and the f32 model in B is used.
+# shellcheck disable=SC2046
+run fixed-flipped "$ELF" $(load "$W/fixed-flipped.blob" "$SLOT_A") $(load "$BLOB_B" "$SLOT_B") \
+  $(load "$W/readings.bin" "$TABLE")
+grep -q "^slot A unusable: CRC mismatch" "$W/fixed-flipped.log" || fail "the flipped fixed-point blob was not refused"
+$TOOL compare --device "$W/fixed-flipped.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B --unusable A | sed 's/^/fixed point in slot A with one bit flipped, f32 B valid: /' | tee -a "$W/compared.txt"
+# --- end of fixed point on the node (AN386) ---
 
 say "5. slot A corrupt, B valid: B must be used"
 # shellcheck disable=SC2046
@@ -236,6 +272,32 @@ run_m0 m0-slot-a "$ELF_M0" "$W/readings.bin" $(load "$BLOB_A" "$M0_A")
 must_pass_m0 m0-slot-a
 $TOOL compare --device "$W/m0-slot-a.log" --replay "$W/replay-a.csv" --readings "$READINGS" \
   --slot A | sed 's/^/M0, slot A valid, B empty: /' | tee -a "$W/compared-m0.txt"
+# --- fixed point on the node (M0): no FPU, so the integer path is the one this part should run ---
+# shellcheck disable=SC2046
+run_m0 m0-fixed-a "$ELF_M0" "$W/readings.bin" $(load "$BLOB_FX" "$M0_A")
+must_pass_m0 m0-fixed-a
+grep -q "^model slot=A .* arith=fixed$" "$W/m0-fixed-a.log" || fail "M0: the node did not take slot A as a fixed-point model"
+$TOOL compare --device "$W/m0-fixed-a.log" --replay "$W/replay-fixed.csv" --readings "$READINGS" \
+  --slot A | sed 's/^/M0, fixed point (--no-fpu) in slot A, B empty: /' | tee -a "$W/compared-m0.txt"
+awk '!done && $1 == "r" && match($0, /d2=[0-9a-f]+/) {
+  hex = "0123456789abcdef"; i = index(hex, substr($0, RSTART + 10, 1)) - 1
+  j = (i % 2 == 0) ? i + 1 : i - 1
+  $0 = substr($0, 1, RSTART + 9) substr(hex, j + 1, 1) substr($0, RSTART + 11); done = 1
+} { print }' "$W/m0-fixed-a.log" >"$W/m0-fixed-tampered.log"
+cmp -s "$W/m0-fixed-a.log" "$W/m0-fixed-tampered.log" && fail "M0: the tampered fixed-point log is unchanged"
+if $TOOL compare --device "$W/m0-fixed-tampered.log" --replay "$W/replay-fixed.csv" --readings "$READINGS" \
+    --slot A >"$W/m0-fixed-tampered.out" 2>&1; then
+  fail "M0: compare accepted a fixed-point log with a changed d² bit"
+fi
+grep -q "d2 bits device" "$W/m0-fixed-tampered.out" || fail "M0: compare refused the tampered fixed-point log for another reason"
+echo "refused, as it must be: $(grep -m1 MISMATCH "$W/m0-fixed-tampered.out")"
+# shellcheck disable=SC2046
+run_m0 m0-fixed-flipped "$ELF_M0" "$W/readings.bin" $(load "$W/fixed-flipped.blob" "$M0_A") $(load "$BLOB_B" "$M0_B")
+must_pass_m0 m0-fixed-flipped
+grep -q "^slot A unusable: CRC mismatch" "$W/m0-fixed-flipped.log" || fail "M0: the flipped fixed-point blob was not refused"
+$TOOL compare --device "$W/m0-fixed-flipped.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
+  --slot B --unusable A | sed 's/^/M0, fixed point in slot A with one bit flipped, f32 B valid: /' | tee -a "$W/compared-m0.txt"
+# --- end of fixed point on the node (M0) ---
 # The same blob programmed as a flash programmer would: `ellipsoid export` writes Intel HEX at the
 # micro:bit's slot B, and the emulator's loader reads the HEX file (its addresses, not ours).
 $ELLIPSOID export "$BLOB_A" --format ihex --board microbit --slot B --out "$W/model-a-slot-b.hex"

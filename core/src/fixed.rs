@@ -8,7 +8,9 @@
 //! `kⱼ` (in the blob) so that the healthy range of the feature spans most of 16 bits; a sensor
 //! driver delivers `rⱼ` directly (or converts with a shift). The host's `replay` and `evaluate`
 //! convert the readings of a CSV file with [`FixedModel::reading`], the one definition of the
-//! conversion: `f64` product by the exact power of two, rounded half away from zero.
+//! conversion: the product by the exact power of two, rounded half away from zero, computed from
+//! the bits of the `f32` with integer operations only ([`scale_round`]), so that a node without an
+//! FPU runs the same function as the host at little cost.
 //!
 //! # A score
 //!
@@ -232,6 +234,66 @@ pub fn q24_to_f32(v: u64) -> f32 {
     f32::from_bits(((biased - 1) << 23) + m as u32)
 }
 
+/// `round(x · 2^k)`, half away from zero, clamped to `i32`, or `None` when `x` is not finite: the
+/// reading conversion of [`FixedModel::reading`], from the bits of `x` (integer operations only).
+///
+/// `|x| = M · 2^e` with `M < 2^24` the significand (the implicit bit included) and `e` its
+/// exponent, so `|x| · 2^k = M · 2^(e + k)`: a left shift, or a right shift whose dropped bits
+/// decide the rounding (at least half of the last kept unit rounds up, away from zero).
+pub const fn scale_round(x: f32, k: i8) -> Option<i32> {
+    let bits = x.to_bits();
+    let field = (bits >> 23) & 0xFF;
+    if field == 0xFF {
+        return None;
+    }
+    let frac = (bits & 0x007F_FFFF) as u64;
+    let (m, e) = if field == 0 {
+        (frac, -149)
+    } else {
+        (frac | 0x0080_0000, field as i32 - 150)
+    };
+    let e = e + k as i32;
+    // |x| · 2^k rounded, saturated at 2^31 (beyond every i32 magnitude but i32::MIN's).
+    const CAP: u64 = 1 << 31;
+    let v = if m == 0 {
+        0
+    } else if e >= 0 {
+        // m < 2^24: a shift of 8 or more already reaches 2^31.
+        if e >= 8 {
+            CAP
+        } else {
+            let v = m << e;
+            if v > CAP {
+                CAP
+            } else {
+                v
+            }
+        }
+    } else {
+        let sh = -e as u32;
+        if sh > 25 {
+            // m < 2^24 ≤ 2^(sh − 2): below one half, rounds to 0.
+            0
+        } else {
+            let q = m >> sh;
+            let rest = m & ((1u64 << sh) - 1);
+            if rest >= 1u64 << (sh - 1) {
+                q + 1
+            } else {
+                q
+            }
+        }
+    };
+    Some(if bits >> 31 == 1 {
+        // −2^31 is i32::MIN itself; beyond it, clamped to it.
+        (0i64 - v as i64) as i32
+    } else if v >= CAP {
+        i32::MAX
+    } else {
+        v as i32
+    })
+}
+
 /// What a saturated reading scores: far above any threshold.
 const SATURATED: Scored = Scored {
     d2: f32::MAX,
@@ -269,14 +331,14 @@ impl<const N: usize, const T: usize> FixedModel<N, T> {
     /// (`f64`, half away from zero), clamped to `i32` (a clamped reading saturates, see the
     /// module docs). A reading that is not finite is a fault. The host's one definition of the
     /// conversion; a node without an FPU reads the integers directly.
+    ///
+    /// Computed from the bits of `xⱼ` with integer operations only ([`scale_round`]), so that a
+    /// node without an FPU converts as cheaply as it scores; the result is the `f64` formula's,
+    /// bit for bit (the product by `2^kⱼ` is exact in `f64`, see the tests).
     pub fn reading(&self, x: &[f32; N]) -> Result<[i32; N], ReadingFault> {
         let mut r = [0i32; N];
         for (i, ((ri, xi), k)) in r.iter_mut().zip(x).zip(&self.p.shift).enumerate() {
-            if !xi.is_finite() {
-                return Err(ReadingFault::NotFinite { feature: i as u8 });
-            }
-            let v = libm::round(f64::from(*xi) * libm::ldexp(1.0, i32::from(*k)));
-            *ri = v.clamp(f64::from(i32::MIN), f64::from(i32::MAX)) as i32;
+            *ri = scale_round(*xi, *k).ok_or(ReadingFault::NotFinite { feature: i as u8 })?;
         }
         Ok(r)
     }
@@ -646,6 +708,76 @@ mod tests {
         fn next(&mut self) -> u32 {
             self.0 = self.0.wrapping_mul(1_664_525).wrapping_add(1_013_904_223);
             self.0
+        }
+    }
+
+    /// The definition `scale_round` must match: the `f64` product by the exact power of two,
+    /// `libm::round` (half away from zero), clamped to `i32` (the conversion as first written).
+    fn scale_round_f64(x: f32, k: i8) -> Option<i32> {
+        if !x.is_finite() {
+            return None;
+        }
+        let v = libm::round(f64::from(x) * libm::ldexp(1.0, i32::from(k)));
+        Some(v.clamp(f64::from(i32::MIN), f64::from(i32::MAX)) as i32)
+    }
+
+    #[test]
+    fn the_integer_reading_conversion_is_the_f64_one_bit_for_bit() {
+        let mut g = Lcg(0x5EED);
+        let mut edges = vec![
+            0.0f32,
+            -0.0,
+            0.5,
+            -0.5,
+            1.5,
+            -2.5,
+            0.499_999_97,
+            f32::MIN_POSITIVE,
+            -f32::MIN_POSITIVE,
+            f32::from_bits(1),
+            f32::MAX,
+            f32::MIN,
+            2_147_483_648.0,
+            -2_147_483_648.0,
+            2_147_483_520.0,
+            -2_147_483_904.0,
+            f32::INFINITY,
+            f32::NEG_INFINITY,
+            f32::NAN,
+        ];
+        // Exact halves and their neighbours at every scale the shifts reach.
+        for p in -40i32..40 {
+            let h = libm::ldexpf(1.5, p);
+            edges.extend([
+                h,
+                -h,
+                f32::from_bits(h.to_bits() + 1),
+                f32::from_bits(h.to_bits() - 1),
+            ]);
+        }
+        for k in SHIFT_RANGE {
+            for &x in &edges {
+                assert_eq!(
+                    scale_round(x, k),
+                    scale_round_f64(x, k),
+                    "x = {x:e}, k = {k}"
+                );
+            }
+            for _ in 0..20_000 {
+                // Any bit pattern, and values of every magnitude a sensor gives.
+                let x = f32::from_bits(g.next());
+                assert_eq!(
+                    scale_round(x, k),
+                    scale_round_f64(x, k),
+                    "x = {x:e}, k = {k}"
+                );
+                let y = (g.next() as i32) as f32 * libm::ldexpf(1.0, (g.next() % 48) as i32 - 40);
+                assert_eq!(
+                    scale_round(y, k),
+                    scale_round_f64(y, k),
+                    "y = {y:e}, k = {k}"
+                );
+            }
         }
     }
 

@@ -32,6 +32,18 @@ pub fn slot_image(sequence: u32, raise_after: u16) -> (Vec<u8>, usize) {
     (buf, len)
 }
 
+/// [`slot_image`]'s model quantised to fixed point (`ellipsoid_core::fixed`, header flag bit 1),
+/// followed by erased flash. Returns the slot's bytes and the blob's length.
+pub fn fixed_image(sequence: u32, raise_after: u16) -> (Vec<u8>, usize) {
+    use ellipsoid_core::{fixed, tri};
+    let (f32_blob, f32_len) = slot_image(sequence, raise_after);
+    let params = blob::decode::<2>(&f32_blob[..f32_len]).unwrap();
+    let q = fixed::quantise::<2, { tri(2) }>(&params).unwrap();
+    let mut buf = vec![0xFF; 512];
+    let len = fixed::encode(&q, &mut buf).unwrap();
+    (buf, len)
+}
+
 /// Slots A and B, in that order.
 pub fn slots_ab<'a>(a: &'a [u8], b: &'a [u8]) -> [Slot<'a>; 2] {
     [

@@ -31,7 +31,7 @@ const fn parse_n(s: &str) -> usize {
 #[cortex_m_rt::entry]
 fn main() -> ! {
     use ellipsoid_firmware_example::{app, board::selected};
-    app::run::<N>(selected::take())
+    app::run::<N, { ellipsoid_core::tri(N) }>(selected::take())
 }
 
 /// The default board feature is on in host builds too (`cargo build --workspace`), where there is

@@ -31,20 +31,18 @@
 
 use core::fmt::{self, Write};
 
-use ellipsoid_core::{
-    AlarmMachine, EventKind, Explained, FlashModel, ReadingFault, Scored, Step, Verdict,
-};
+use ellipsoid_core::{AlarmMachine, EventKind, Explained, ReadingFault, Scored, Step, Verdict};
 use embedded_hal::digital::OutputPin;
 
 use crate::pins::{Line, PinChange};
-use crate::slots::{self, Chosen, Probation, Slot, SlotReport, TieKind, Watch};
+use crate::slots::{self, Chosen, Probation, Slot, SlotModel, SlotReport, TieKind, Watch};
 use crate::source::ReadingSource;
 
 /// Score one reading. Kept out of line so that the image check for panic machinery (see the
 /// README) can find the scoring path by its symbol.
 #[inline(never)]
-pub fn score<const N: usize>(
-    model: &FlashModel<'_, N>,
+pub fn score<const N: usize, const T: usize>(
+    model: &SlotModel<'_, N, T>,
     x: &[f32; N],
 ) -> Result<Scored, ReadingFault> {
     model.score(x)
@@ -52,8 +50,8 @@ pub fn score<const N: usize>(
 
 /// Score a reading and split d² per feature (only on a raised alarm). Out of line, as [`score`].
 #[inline(never)]
-pub fn explain<const N: usize>(
-    model: &FlashModel<'_, N>,
+pub fn explain<const N: usize, const T: usize>(
+    model: &SlotModel<'_, N, T>,
     x: &[f32; N],
 ) -> Result<Explained<N>, ReadingFault> {
     model.explain(x)
@@ -77,11 +75,14 @@ pub struct Summary {
 
 /// A sensor node: a model (or none), the alarm state machine and the two lines.
 ///
-/// The model is a [`FlashModel`]: a checked view of the blob in its slot (lifetime `'m`), so the
-/// node holds `4 N + 48` bytes of it (at N = 5, 72 bytes on thumbv7em), never a decoded copy.
+/// The model is a [`SlotModel`]: an `f32` model is a checked view of the blob in its slot
+/// (lifetime `'m`, `4 N + 48` bytes of it in RAM), never a decoded copy; a fixed-point model has
+/// no in-flash form and is a RAM copy of its parameters. The enum takes the larger of the two
+/// (the fixed model is 88 bytes at N = 5, see `slots::SlotModel`). `T` must be `ellipsoid_core::tri(N)`: the
+/// fixed-point model's coefficient count (checked at compile time).
 #[derive(Debug)]
-pub struct Node<'m, A, F, const N: usize> {
-    model: Option<FlashModel<'m, N>>,
+pub struct Node<'m, A, F, const N: usize, const T: usize> {
+    model: Option<SlotModel<'m, N, T>>,
     machine: AlarmMachine,
     alarm: Line<A>,
     fault: Line<F>,
@@ -148,11 +149,12 @@ impl fmt::Display for Cause {
     }
 }
 
-impl<'m, A: OutputPin, F: OutputPin, const N: usize> Node<'m, A, F, N> {
+impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A, F, N, T> {
     /// Check the slots, take the newest valid model, and drive both lines to their first levels:
     /// alarm off, and fault on if no slot holds a valid model. Reports every slot and pin.
     pub fn boot(slots: &[Slot<'m>], alarm: Line<A>, fault: Line<F>, out: &mut impl Write) -> Self {
-        let chosen = slots::choose::<N>(slots, None, |slot, r| report_slot(out, slots, slot, r));
+        const { assert!(T == ellipsoid_core::tri(N), "T must be tri(N)") };
+        let chosen = slots::choose::<N, T>(slots, None, |slot, r| report_slot(out, slots, slot, r));
         let mut node = Self {
             model: None,
             machine: AlarmMachine::without_model(),
@@ -171,7 +173,7 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize> Node<'m, A, F, N> {
     /// Put the chosen model (or none) in use, and report it.
     fn take(
         &mut self,
-        chosen: Option<Chosen<'m, N>>,
+        chosen: Option<Chosen<'m, N, T>>,
         slots: &[Slot<'m>],
         fell_back: bool,
         out: &mut impl Write,
@@ -188,12 +190,17 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize> Node<'m, A, F, N> {
         let meta = c.model.meta();
         let _ = writeln!(
             out,
-            "model slot={} seq={} id={:#010x} crc={:#010x} mark={}{}",
+            "model slot={} seq={} id={:#010x} crc={:#010x} mark={}{}{}",
             name(c.slot),
             meta.sequence,
             meta.model_id,
             c.crc,
             c.mark,
+            if c.model.is_fixed() {
+                " arith=fixed"
+            } else {
+                ""
+            },
             if fell_back { " fallback=1" } else { "" }
         );
         // A model taken in a fall-back is not put on probation again: the node does not bounce.
@@ -217,7 +224,7 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize> Node<'m, A, F, N> {
     }
 
     /// The model in use, if any.
-    pub const fn model(&self) -> Option<&FlashModel<'m, N>> {
+    pub const fn model(&self) -> Option<&SlotModel<'m, N, T>> {
         self.model.as_ref()
     }
 
@@ -366,7 +373,7 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize> Node<'m, A, F, N> {
             from.and_then(|i| slots.get(i)).map_or("?", |s| s.name),
             slots::PROBATION_READINGS
         );
-        let chosen = slots::choose::<N>(slots, from, |slot, r| report_slot(out, slots, slot, r));
+        let chosen = slots::choose::<N, T>(slots, from, |slot, r| report_slot(out, slots, slot, r));
         if chosen.is_none() {
             let _ = writeln!(
                 out,
@@ -414,6 +421,7 @@ mod tests {
     use crate::fixtures::{slot_image, slots_ab, table};
     use crate::pins::ActiveLevel;
     use crate::source::Table;
+    use ellipsoid_core::blob;
     use embedded_hal_mock::eh1::digital::{Mock, State, Transaction};
 
     fn blob_bytes(sequence: u32, raise_after: u16) -> Vec<u8> {
@@ -439,7 +447,7 @@ mod tests {
             bytes: &a,
         }];
         let mut out = String::new();
-        let mut node = Node::<_, _, 2>::boot(
+        let mut node = Node::<_, _, 2, 3>::boot(
             &slots,
             Line::new(alarm.clone(), ActiveLevel::Low),
             Line::new(fault.clone(), ActiveLevel::High),
@@ -492,7 +500,7 @@ mod tests {
         let erased = vec![0xFF; 64];
         let slots = slots_ab(&torn, &erased);
         let mut out = String::new();
-        let mut node = Node::<_, _, 2>::boot(
+        let mut node = Node::<_, _, 2, 3>::boot(
             &slots,
             Line::new(alarm.clone(), ActiveLevel::High),
             Line::new(fault.clone(), ActiveLevel::High),
@@ -525,7 +533,7 @@ mod tests {
             bytes: &a,
         }];
         let mut out = String::new();
-        let mut node = Node::<_, _, 2>::boot(
+        let mut node = Node::<_, _, 2, 3>::boot(
             &slots,
             Line::new(alarm.clone(), ActiveLevel::High),
             Line::new(fault.clone(), ActiveLevel::High),
@@ -547,7 +555,7 @@ mod tests {
         let mut alarm = Mock::new(&[Transaction::set(State::Low), Transaction::set(State::High)]);
         let mut fault = Mock::new(&[Transaction::set(State::Low)]);
         let mut out = String::new();
-        let mut node = Node::<_, _, 2>::boot(
+        let mut node = Node::<_, _, 2, 3>::boot(
             &slots,
             Line::new(alarm.clone(), ActiveLevel::High),
             Line::new(fault.clone(), ActiveLevel::High),
@@ -602,7 +610,7 @@ mod tests {
             Transaction::set(State::Low),  // fallback to A after reading n - 1
         ]);
         let mut out = String::new();
-        let mut node = Node::<_, _, 2>::boot(
+        let mut node = Node::<_, _, 2, 3>::boot(
             &slots,
             Line::new(alarm.clone(), ActiveLevel::High),
             Line::new(fault.clone(), ActiveLevel::High),
@@ -662,7 +670,7 @@ mod tests {
             let mut alarm = Mock::new(&[Transaction::set(State::Low)]);
             let mut fault = Mock::new(&[Transaction::set(State::Low)]);
             let mut out = String::new();
-            let mut node = Node::<_, _, 2>::boot(
+            let mut node = Node::<_, _, 2, 3>::boot(
                 &slots,
                 Line::new(alarm.clone(), ActiveLevel::High),
                 Line::new(fault.clone(), ActiveLevel::High),
@@ -691,5 +699,138 @@ mod tests {
         }
         // "CONF" in flash, little-endian.
         assert_eq!(slots::CONFIRM_MARK.to_le_bytes(), *b"CONF");
+    }
+
+    #[test]
+    fn a_fixed_point_blob_is_scored_in_integers_with_the_same_lines_alarm_and_explain() {
+        use ellipsoid_core::{tri, FixedModel};
+        let (a, len) = crate::fixtures::fixed_image(1, 1);
+        let reference = FixedModel::<2, { tri(2) }>::from_blob(&a[..len]).unwrap();
+        let slots = [Slot {
+            name: "A",
+            bytes: &a,
+        }];
+        let mut alarm = Mock::new(&[
+            Transaction::set(State::Low),  // boot: off
+            Transaction::set(State::High), // reading 1 raises
+            Transaction::set(State::Low),  // reading 3 clears
+            Transaction::set(State::High), // reading 4 (saturated) raises
+        ]);
+        let mut fault = Mock::new(&[
+            Transaction::set(State::Low),  // boot: off
+            Transaction::set(State::High), // reading 2 is not finite
+            Transaction::set(State::Low),  // reading 3 scores again
+        ]);
+        let mut out = String::new();
+        let mut node = Node::<_, _, 2, 3>::boot(
+            &slots,
+            Line::new(alarm.clone(), ActiveLevel::High),
+            Line::new(fault.clone(), ActiveLevel::High),
+            &mut out,
+        );
+        assert!(node.model().is_some_and(|m| m.is_fixed()));
+        // Far outside the model: the deviation leaves 16 bits, and saturates into an alarm.
+        let readings = [
+            [0.0, 0.0],
+            [4.0, 0.0],
+            [f32::NAN, 0.0],
+            [1.0, 0.0],
+            [0.0, 1.0e6],
+        ];
+        let rows = table(&readings);
+        let mut src = Table::<2>::new(&rows).unwrap();
+        let summary = node.run(&mut src, &mut out);
+        assert_eq!(
+            summary,
+            Summary {
+                scored: 4,
+                faults: 1
+            }
+        );
+        let bits = |x: &[f32; 2]| reference.score_f32(x).unwrap().d2.to_bits();
+        // The identity model quantises exactly (shift 11, exponent 25): 16 and 1 as in f32.
+        assert_eq!(bits(&readings[1]), 16.0f32.to_bits());
+        assert_eq!(bits(&readings[3]), 1.0f32.to_bits());
+        assert_eq!(bits(&readings[4]), f32::MAX.to_bits());
+        let crc = blob::checksum(&a[..len - blob::CRC_LEN]);
+        let lines: Vec<&str> = out.lines().collect();
+        let expected = [
+            format!("slot A valid seq=1 id=0x00000007 crc={crc:#010x} mark=unconfirmed"),
+            format!(
+                "model slot=A seq=1 id=0x00000007 crc={crc:#010x} mark=unconfirmed arith=fixed"
+            ),
+            "pin fault off level=low at=boot".into(),
+            "pin alarm off level=low at=boot".into(),
+            format!(
+                "r 0 d2={:08x} v=below alarm=0 fault=0 event=-",
+                bits(&readings[0])
+            ),
+            format!(
+                "r 1 d2={:08x} v=above alarm=1 fault=0 event=raised top=0",
+                bits(&readings[1])
+            ),
+            "pin alarm on level=high at=1".into(),
+            "r 2 d2=- v=fault alarm=1 fault=1 event=fault cause=not-finite:0".into(),
+            "pin fault on level=high at=2".into(),
+            format!(
+                "r 3 d2={:08x} v=below alarm=0 fault=0 event=fault-cleared+cleared",
+                bits(&readings[3])
+            ),
+            "pin fault off level=low at=3".into(),
+            "pin alarm off level=low at=3".into(),
+            // A saturated reading has no split per feature: the alarm is raised without `top`.
+            "r 4 d2=7f7fffff v=above alarm=1 fault=0 event=raised".into(),
+            "pin alarm on level=high at=4".into(),
+            "end scored=4 faults=1".into(),
+        ];
+        assert_eq!(lines, expected);
+        alarm.done();
+        fault.done();
+    }
+
+    #[test]
+    fn fixed_point_and_f32_slots_follow_the_same_slot_rules() {
+        let a = blob_bytes(1, 1);
+        let (mut b, len) = crate::fixtures::fixed_image(2, 1);
+        for torn in [false, true] {
+            if torn {
+                b[len / 2] ^= 0x04;
+            }
+            let slots = slots_ab(&a, &b);
+            let mut out = String::new();
+            let node = Node::<_, _, 2, 3>::boot(
+                &slots,
+                Line::new(
+                    Mock::new(&[Transaction::set(State::Low)]),
+                    ActiveLevel::High,
+                ),
+                Line::new(
+                    Mock::new(&[Transaction::set(State::Low)]),
+                    ActiveLevel::High,
+                ),
+                &mut out,
+            );
+            let (seq, fixed) = node
+                .model()
+                .map(|m| (m.meta().sequence, m.is_fixed()))
+                .unwrap();
+            if torn {
+                // One bit changed in the newer, fixed-point slot: refused, the f32 slot is used.
+                assert_eq!((seq, fixed), (1, false), "{out}");
+                assert!(out.contains("slot B unusable: CRC mismatch"), "{out}");
+                assert!(!out.contains("arith=fixed"), "{out}");
+            } else {
+                assert_eq!((seq, fixed), (2, true), "{out}");
+                assert!(
+                    out.contains(
+                        "mark=unconfirmed arith=fixed\nprobation slot=B readings=60 fallback=A\n"
+                    ),
+                    "{out}"
+                );
+            }
+            let (mut al, mut fa) = node.release();
+            al.done();
+            fa.done();
+        }
     }
 }

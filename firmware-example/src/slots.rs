@@ -34,7 +34,10 @@
 use core::cmp::Ordering;
 use core::fmt;
 
-use ellipsoid_core::{blob, DecodeError, FlashModel};
+use ellipsoid_core::{
+    blob, DecodeError, Explained, FixedModel, FlashModel, ModelMeta, ReadingFault, Scored,
+};
+use ellipsoid_core::{AlarmPolicy, Thresholds};
 
 /// The confirmation mark: the word after the blob, as its four bytes `CONF` in flash.
 pub const CONFIRM_MARK: u32 = u32::from_le_bytes(*b"CONF");
@@ -174,13 +177,83 @@ impl fmt::Display for SlotError {
 
 impl core::error::Error for SlotError {}
 
-/// Validate the blob at the start of `bytes` and keep a view of it in place: the model stays in
-/// flash, and only its centre and a few scalars are kept in RAM (see `ellipsoid_core::flash`).
+/// A checked model from a slot, of either arithmetic (flag bit 1 of the blob header).
+///
+/// * [`SlotModel::Float`]: an `f32` model, a checked view of the blob in place in flash.
+/// * [`SlotModel::Fixed`]: a fixed-point model (`ellipsoid_core::fixed`), which has no in-flash
+///   form: its parameters are copied into RAM once, at boot (`size_of::<FixedModel<N, T>>()`,
+///   88 bytes at N = 5, 144 at N = 8). `T` is `tri(N)`, its coefficient count.
+///
+/// Both score a reading in engineering units: the fixed model converts it with
+/// `FixedModel::reading`, the same function the host's `replay` uses, then scores it with integer
+/// arithmetic only, so that the device's d² is the host's, bit for bit.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum SlotModel<'a, const N: usize, const T: usize> {
+    /// An `f32` model, scored in place in flash.
+    Float(FlashModel<'a, N>),
+    /// A fixed-point model, copied into RAM.
+    Fixed(FixedModel<N, T>),
+}
+
+impl<const N: usize, const T: usize> SlotModel<'_, N, T> {
+    /// Identifier, training time, sequence.
+    pub fn meta(&self) -> ModelMeta {
+        match self {
+            SlotModel::Float(m) => m.meta(),
+            SlotModel::Fixed(m) => m.meta(),
+        }
+    }
+
+    /// Alarm and clear thresholds.
+    pub fn thresholds(&self) -> Thresholds {
+        match self {
+            SlotModel::Float(m) => m.thresholds(),
+            SlotModel::Fixed(m) => m.thresholds(),
+        }
+    }
+
+    /// Debounce and latch policy.
+    pub fn policy(&self) -> AlarmPolicy {
+        match self {
+            SlotModel::Float(m) => m.policy(),
+            SlotModel::Fixed(m) => m.policy(),
+        }
+    }
+
+    /// Whether the model scores in fixed point.
+    pub const fn is_fixed(&self) -> bool {
+        matches!(self, SlotModel::Fixed(_))
+    }
+
+    /// Score a reading in engineering units.
+    #[inline(always)]
+    pub fn score(&self, x: &[f32; N]) -> Result<Scored, ReadingFault> {
+        match self {
+            SlotModel::Float(m) => m.score(x),
+            SlotModel::Fixed(m) => m.score_f32(x),
+        }
+    }
+
+    /// Score a reading and split d² per feature.
+    #[inline(always)]
+    pub fn explain(&self, x: &[f32; N]) -> Result<Explained<N>, ReadingFault> {
+        match self {
+            SlotModel::Float(m) => m.explain(x),
+            SlotModel::Fixed(m) => m.explain(&m.reading(x)?),
+        }
+    }
+}
+
+/// Validate the blob at the start of `bytes`. An `f32` blob is kept as a view in place: the model
+/// stays in flash, and only its centre and a few scalars are kept in RAM (see
+/// `ellipsoid_core::flash`). A fixed-point blob (flag bit 1) is decoded into a RAM copy.
 ///
 /// Never panics: every access is checked. Kept out of line so that the image check for panic
 /// machinery (see the README) can find this path by its symbol.
 #[inline(never)]
-pub fn load<const N: usize>(bytes: &[u8]) -> Result<FlashModel<'_, N>, SlotError> {
+pub fn load<const N: usize, const T: usize>(
+    bytes: &[u8],
+) -> Result<SlotModel<'_, N, T>, SlotError> {
     let head = bytes.get(..blob::HEADER_LEN).unwrap_or(bytes);
     if head.iter().all(|b| *b == 0xFF) || head.iter().all(|b| *b == 0x00) {
         return Err(SlotError::Empty);
@@ -190,7 +263,15 @@ pub fn load<const N: usize>(bytes: &[u8]) -> Result<FlashModel<'_, N>, SlotError
         stated: header.len,
         capacity: bytes.len(),
     })?;
-    FlashModel::from_blob(blob).map_err(SlotError::Blob)
+    if header.flags & blob::FLAG_FIXED != 0 {
+        FixedModel::from_blob(blob)
+            .map(SlotModel::Fixed)
+            .map_err(SlotError::Blob)
+    } else {
+        FlashModel::from_blob(blob)
+            .map(SlotModel::Float)
+            .map_err(SlotError::Blob)
+    }
 }
 
 /// What [`choose`] found in one slot.
@@ -234,11 +315,11 @@ pub enum TieKind {
 
 /// The model chosen at boot.
 #[derive(Clone, Copy, Debug, PartialEq)]
-pub struct Chosen<'a, const N: usize> {
+pub struct Chosen<'a, const N: usize, const T: usize> {
     /// Index into the slots given to [`choose`].
     pub slot: usize,
-    /// The checked model, in place in its slot.
-    pub model: FlashModel<'a, N>,
+    /// The checked model (in place in its slot for an `f32` model).
+    pub model: SlotModel<'a, N, T>,
     /// The blob's CRC-32.
     pub crc: u32,
     /// The chosen slot's confirmation word.
@@ -281,18 +362,18 @@ fn beats(a: &Candidate, b: &Candidate) -> (bool, Option<TieKind>) {
 /// model (see the module documentation for the rule), or `None` when no slot validates. Slots
 /// `skip` (an index) is passed over, as if unusable, without a report: the slot a node has fallen
 /// back from.
-pub fn choose<'a, const N: usize>(
+pub fn choose<'a, const N: usize, const T: usize>(
     slots: &[Slot<'a>],
     skip: Option<usize>,
     mut report: impl FnMut(&Slot<'a>, &SlotReport),
-) -> Option<Chosen<'a, N>> {
-    let mut best: Option<(Candidate, FlashModel<'a, N>)> = None;
+) -> Option<Chosen<'a, N, T>> {
+    let mut best: Option<(Candidate, SlotModel<'a, N, T>)> = None;
     let mut second: Option<Candidate> = None;
     for (i, slot) in slots.iter().enumerate() {
         if skip == Some(i) {
             continue;
         }
-        let model = match load::<N>(slot.bytes) {
+        let model = match load::<N, T>(slot.bytes) {
             Ok(m) => m,
             Err(e) => {
                 report(slot, &SlotReport::Unusable(e));
@@ -427,7 +508,7 @@ mod tests {
 
     fn chosen_seq(slots: &[Slot<'_>]) -> (Option<(usize, u32)>, Vec<String>) {
         let mut lines = Vec::new();
-        let c = choose::<2>(slots, None, |s: &Slot<'_>, r: &SlotReport| {
+        let c = choose::<2, 3>(slots, None, |s: &Slot<'_>, r: &SlotReport| {
             lines.push(format!("{} {:?}", s.name, r))
         });
         (c.map(|c| (c.slot, c.model.meta().sequence)), lines)
@@ -538,12 +619,12 @@ mod tests {
         assert_eq!(mark_offset(60), 60);
         // The mark is outside the blob: a confirmed slot still validates, with the same CRC.
         let (b, _) = blob(4);
-        let c = choose::<2>(&slots_ab(&ac, &b), None, |_, _| {}).unwrap();
+        let c = choose::<2, 3>(&slots_ab(&ac, &b), None, |_, _| {}).unwrap();
         assert_eq!(
             (c.slot, c.mark, c.fallback),
             (1, Mark::Unconfirmed, Some(0))
         );
-        let c = choose::<2>(&slots_ab(&ac, &b), Some(1), |_, _| {}).unwrap();
+        let c = choose::<2, 3>(&slots_ab(&ac, &b), Some(1), |_, _| {}).unwrap();
         assert_eq!((c.slot, c.mark, c.fallback), (0, Mark::Confirmed, None));
     }
 
@@ -594,19 +675,19 @@ mod tests {
     fn empty_erased_and_wrong_dimension_slots() {
         let erased = [0xFFu8; 64];
         let zero = [0u8; 64];
-        assert_eq!(load::<2>(&erased), Err(SlotError::Empty));
-        assert_eq!(load::<2>(&zero), Err(SlotError::Empty));
-        assert_eq!(load::<2>(&zero[..3]), Err(SlotError::Empty));
+        assert_eq!(load::<2, 3>(&erased), Err(SlotError::Empty));
+        assert_eq!(load::<2, 3>(&zero), Err(SlotError::Empty));
+        assert_eq!(load::<2, 3>(&zero[..3]), Err(SlotError::Empty));
         let (a, len) = blob(1);
         assert!(matches!(
-            load::<3>(&a),
+            load::<3, 6>(&a),
             Err(SlotError::Blob(DecodeError::Dimension {
                 found: 2,
                 expected: 3
             }))
         ));
         assert_eq!(
-            load::<2>(&a[..len - 1]),
+            load::<2, 3>(&a[..len - 1]),
             Err(SlotError::TooLong {
                 stated: len,
                 capacity: len - 1

@@ -25,6 +25,7 @@ mod image {
     use ellipsoid_firmware_example::board::selected::{self, Console};
     use ellipsoid_firmware_example::measure::{paint_stack, spin, stack_depth, stack_peak, Ticks};
     use ellipsoid_firmware_example::node;
+    use ellipsoid_firmware_example::slots::SlotModel;
 
     /// Scores per timed loop.
     const REPS: u32 = 4000;
@@ -153,7 +154,9 @@ mod image {
         let overhead = Ticks::elapsed(t2, t3) as f32 * per_tick / REPS as f32;
         let floor = N * (N + 1) / 2 + 2 * N;
         let (c_ticks, c_per, c_stack) = time(ticks, per_tick, &compact, &xs, score_compact);
-        let (f_ticks, f_per, f_stack) = time(ticks, per_tick, &flash, &xs, node::score);
+        // The node's own path: `node::score` on the slot's model, an `f32` view in flash here.
+        let slot_flash = SlotModel::<N, T>::Float(flash);
+        let (f_ticks, f_per, f_stack) = time(ticks, per_tick, &slot_flash, &xs, node::score);
         let (m_ticks, m_per, m_stack) = time(ticks, per_tick, &model, &xs, score_model);
         // The fixed-point model of the same parameters, on the same readings as integers.
         let fixed_ok = match fixed::quantise::<N, T>(&params).map(FixedModel::new) {
@@ -171,6 +174,20 @@ mod image {
                 let t1 = ticks.now();
                 black_box(acc);
                 let per = Ticks::elapsed(t0, t1) as f32 * per_tick / REPS as f32;
+                // The node's path for a fixed-point slot: `node::score` on readings in
+                // engineering units, each converted by `FixedModel::reading` (f64) first.
+                let (n_ticks, n_per, n_stack) = time(
+                    ticks,
+                    per_tick,
+                    &SlotModel::<N, T>::Fixed(fm),
+                    &xs,
+                    node::score,
+                );
+                let _ = writeln!(
+                    out,
+                    "cost_node_fixed n={N} reps={REPS} ticks={n_ticks} instr_per_score={n_per:.1} stack_bytes={n_stack} ram_bytes={}",
+                    core::mem::size_of::<SlotModel<'_, N, T>>(),
+                );
                 let _ = writeln!(
                     out,
                     "cost_fixed n={N} reps={REPS} ticks={} instr_per_score={per:.1} loop_overhead={overhead:.1} floor_ops={floor} instr_per_op={:.2} ram_bytes={}",

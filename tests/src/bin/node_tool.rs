@@ -1459,7 +1459,9 @@ fn figures(
     }
     writeln!(s)?;
     writeln!(s, "The model itself is not in the image: it sits in a slot (`MODEL_A`/`MODEL_B`, 16 KiB each), and the node")?;
-    writeln!(s, "scores it in place through a `FlashModel<5>` (72 bytes on the stack of `main`; see below).\n")?;
+    writeln!(s, "scores an `f32` blob in place through a `FlashModel<5>` (see below). A fixed-point blob (`fit --no-fpu`)")?;
+    writeln!(s, "has no in-flash form: the node copies it into RAM once, at boot (`SlotModel`; its size is `ram_bytes` in")?;
+    writeln!(s, "`score-cost`'s `cost_node_fixed` lines).\n")?;
     writeln!(s, "**Stack.** The stack below the stack pointer is painted with a pattern before the scoring loop, and")?;
     writeln!(s, "the deepest word overwritten is found afterwards. Peak while scoring the demo's readings (boot,")?;
     writeln!(s, "choosing the model in its slot, scoring, explaining raised alarms and formatting the report included): **{peak} bytes**.")?;
