@@ -1575,10 +1575,16 @@ struct M0Inputs<'a> {
 /// The `cost n=...` lines of a `score-cost` output, by N: (instructions per score, loop and call,
 /// floor operations, instructions per floor operation).
 fn cost_lines(path: &Path) -> Result<BTreeMap<u32, (f64, f64, u64, f64)>> {
+    cost_lines_of(path, "cost ")
+}
+
+/// The `score-cost` lines that start with `prefix` (`"cost "`, `"cost_fixed "`...), by N:
+/// instructions per score, loop overhead, floor operations, instructions per floor operation.
+fn cost_lines_of(path: &Path, prefix: &str) -> Result<BTreeMap<u32, (f64, f64, u64, f64)>> {
     let text = read_text(path)?;
     let mut m = BTreeMap::new();
     for (i, line) in text.lines().enumerate() {
-        if !line.starts_with("cost ") {
+        if !line.starts_with(prefix) {
             continue;
         }
         let get = |k: &str| -> Result<&str> {
@@ -1670,6 +1676,37 @@ fn figures_m0(i: &M0Inputs<'_>) -> Result<()> {
         writeln!(
             s,
             "| {n} | {per:.1} | {overhead:.1} | {floor} | {ipo:.2} | {ratio} | {st} |"
+        )?;
+    }
+    writeln!(s)?;
+    let fixed = cost_lines_of(i.cost, "cost_fixed ")?;
+    ensure!(
+        !fixed.is_empty(),
+        "{}: no cost_fixed lines (the fixed-point score's cost)",
+        i.cost.display()
+    );
+    writeln!(s, "**Cost per score in fixed point** (`fit --no-fpu`: the core's integer score, `FixedModel::score`, on")?;
+    writeln!(s, "integer readings; the same `score-cost` loop). Our target for this path is at most 12 instructions per")?;
+    writeln!(s, "floor operation. Where it is not met, the disassembly shows why: the inner loop is not unrolled, spills")?;
+    writeln!(
+        s,
+        "registers, and calls the compiler's 64-bit shift helper once a row.\n"
+    )?;
+    writeln!(s, "| N | instructions per score | instructions per floor op | × faster than software float | target, instructions per score | target |")?;
+    writeln!(s, "|---|---|---|---|---|---|")?;
+    for (n, (per, _, floor, ipo)) in &fixed {
+        let soft = cost
+            .get(n)
+            .map_or("—".to_string(), |f| format!("{:.1}", f.0 / per));
+        let target = 12 * floor;
+        let verdict = if *per <= target as f64 {
+            "met"
+        } else {
+            "not met"
+        };
+        writeln!(
+            s,
+            "| {n} | {per:.1} | {ipo:.2} | {soft} | ≤ {target} | {verdict} |"
         )?;
     }
     writeln!(s)?;
