@@ -8,7 +8,12 @@ use crate::source::table_header;
 /// A flash slot holding a valid 2-feature blob (identity `W`, alarm above 9, clear below 4,
 /// clear after 1), followed by erased flash (0xFF). Returns the slot's bytes and the blob's length.
 pub fn slot_image(sequence: u32, raise_after: u16) -> (Vec<u8>, usize) {
-    let params = ModelParams::<2> {
+    image_of(&params(sequence, raise_after))
+}
+
+/// The parameters of [`slot_image`]'s model.
+pub fn params(sequence: u32, raise_after: u16) -> ModelParams<2> {
+    ModelParams::<2> {
         meta: ModelMeta {
             model_id: 7,
             trained_at: 0,
@@ -26,9 +31,14 @@ pub fn slot_image(sequence: u32, raise_after: u16) -> (Vec<u8>, usize) {
             clear_after: 1,
             latch: false,
         },
-    };
+    }
+}
+
+/// A flash slot holding the blob of `params`, followed by erased flash (0xFF). Returns the slot's
+/// bytes and the blob's length.
+pub fn image_of(params: &ModelParams<2>) -> (Vec<u8>, usize) {
     let mut buf = vec![0xFF; 512];
-    let len = blob::encode(&params, &mut buf).unwrap();
+    let len = blob::encode(params, &mut buf).unwrap();
     (buf, len)
 }
 

@@ -428,6 +428,21 @@ mod tests {
         slot_image(sequence, raise_after).0
     }
 
+    /// Boot a 2-feature node on `slots` with both lines active-high on (clones of) the mocks.
+    fn boot_active_high<'m>(
+        slots: &[Slot<'m>],
+        alarm: &Mock,
+        fault: &Mock,
+        out: &mut String,
+    ) -> Node<'m, Mock, Mock, 2, 3> {
+        Node::boot(
+            slots,
+            Line::new(alarm.clone(), ActiveLevel::High),
+            Line::new(fault.clone(), ActiveLevel::High),
+            out,
+        )
+    }
+
     #[test]
     fn alarm_and_fault_lines_follow_the_readings_on_active_low_and_high_pins() {
         // Alarm active-low: off = high. Fault active-high: off = low.
@@ -500,12 +515,7 @@ mod tests {
         let erased = vec![0xFF; 64];
         let slots = slots_ab(&torn, &erased);
         let mut out = String::new();
-        let mut node = Node::<_, _, 2, 3>::boot(
-            &slots,
-            Line::new(alarm.clone(), ActiveLevel::High),
-            Line::new(fault.clone(), ActiveLevel::High),
-            &mut out,
-        );
+        let mut node = boot_active_high(&slots, &alarm, &fault, &mut out);
         assert!(node.model().is_none());
         assert_eq!(node.lines(), (Some(false), Some(true)));
         let rows = table(&[[100.0, 100.0]]);
@@ -533,12 +543,7 @@ mod tests {
             bytes: &a,
         }];
         let mut out = String::new();
-        let mut node = Node::<_, _, 2, 3>::boot(
-            &slots,
-            Line::new(alarm.clone(), ActiveLevel::High),
-            Line::new(fault.clone(), ActiveLevel::High),
-            &mut out,
-        );
+        let mut node = boot_active_high(&slots, &alarm, &fault, &mut out);
         assert_eq!(node.lines(), (Some(false), Some(false)));
         node.source_failed(&mut out);
         assert_eq!(node.lines(), (Some(false), Some(true)));
@@ -555,12 +560,7 @@ mod tests {
         let mut alarm = Mock::new(&[Transaction::set(State::Low), Transaction::set(State::High)]);
         let mut fault = Mock::new(&[Transaction::set(State::Low)]);
         let mut out = String::new();
-        let mut node = Node::<_, _, 2, 3>::boot(
-            &slots,
-            Line::new(alarm.clone(), ActiveLevel::High),
-            Line::new(fault.clone(), ActiveLevel::High),
-            &mut out,
-        );
+        let mut node = boot_active_high(&slots, &alarm, &fault, &mut out);
         assert_eq!(node.model().map(|m| m.meta().sequence), Some(3));
         assert!(!node.step(&[4.0, 0.0], &mut out).unwrap().alarm);
         assert!(node.step(&[0.0, 4.0], &mut out).unwrap().alarm);
@@ -573,28 +573,9 @@ mod tests {
     /// A slot image of a 2-feature model whose feature 0 is log-transformed: it faults (log
     /// domain) on every reading whose feature 0 is not positive, where `slot_image`'s model scores.
     fn log_image(sequence: u32) -> Vec<u8> {
-        use ellipsoid_core::{blob, AlarmPolicy, ModelMeta, ModelParams, Preprocess, Thresholds};
-        let params = ModelParams::<2> {
-            meta: ModelMeta {
-                model_id: 8,
-                trained_at: 0,
-                sequence,
-            },
-            preprocess: Preprocess {
-                log_mask: 1,
-                ..Preprocess::identity()
-            },
-            mean: [0.0; 2],
-            w: [[1.0, 0.0], [0.0, 1.0]],
-            thresholds: Thresholds {
-                alarm: 9.0,
-                clear: 4.0,
-            },
-            policy: AlarmPolicy::default(),
-        };
-        let mut buf = vec![0xFF; 512];
-        blob::encode(&params, &mut buf).unwrap();
-        buf
+        let mut p = crate::fixtures::params(sequence, 1);
+        p.preprocess.log_mask = 1;
+        crate::fixtures::image_of(&p).0
     }
 
     #[test]
@@ -610,12 +591,7 @@ mod tests {
             Transaction::set(State::Low),  // fallback to A after reading n - 1
         ]);
         let mut out = String::new();
-        let mut node = Node::<_, _, 2, 3>::boot(
-            &slots,
-            Line::new(alarm.clone(), ActiveLevel::High),
-            Line::new(fault.clone(), ActiveLevel::High),
-            &mut out,
-        );
+        let mut node = boot_active_high(&slots, &alarm, &fault, &mut out);
         assert_eq!(node.model().map(|m| m.meta().sequence), Some(2));
         // Feature 0 negative: B cannot take its log; A scores d² = 1 + 0.
         let rows = table(&vec![[-1.0, 0.0]; n + 2]);
@@ -670,12 +646,7 @@ mod tests {
             let mut alarm = Mock::new(&[Transaction::set(State::Low)]);
             let mut fault = Mock::new(&[Transaction::set(State::Low)]);
             let mut out = String::new();
-            let mut node = Node::<_, _, 2, 3>::boot(
-                &slots,
-                Line::new(alarm.clone(), ActiveLevel::High),
-                Line::new(fault.clone(), ActiveLevel::High),
-                &mut out,
-            );
+            let mut node = boot_active_high(&slots, &alarm, &fault, &mut out);
             let rows = table(&[[1.0, 0.0], [0.0, 1.0]]);
             let mut src = Table::<2>::new(&rows).unwrap();
             let _ = node.run_with_fallback(&slots, &mut src, &mut out);
@@ -722,12 +693,7 @@ mod tests {
             Transaction::set(State::Low),  // reading 3 scores again
         ]);
         let mut out = String::new();
-        let mut node = Node::<_, _, 2, 3>::boot(
-            &slots,
-            Line::new(alarm.clone(), ActiveLevel::High),
-            Line::new(fault.clone(), ActiveLevel::High),
-            &mut out,
-        );
+        let mut node = boot_active_high(&slots, &alarm, &fault, &mut out);
         assert!(node.model().is_some_and(|m| m.is_fixed()));
         // Far outside the model: the deviation leaves 16 bits, and saturates into an alarm.
         let readings = [
