@@ -35,6 +35,11 @@ enum Cmd {
         /// The table to write.
         #[arg(long)]
         out: PathBuf,
+        /// A column of the CSV that holds the machine's mode for each reading (an integer; empty
+        /// for none): the table then carries it with every reading (magic `ERTM`), for a
+        /// known-mode bank.
+        #[arg(long)]
+        mode_column: Option<String>,
     },
     /// Damage a blob the way a slot can be damaged.
     Damage {
@@ -215,7 +220,12 @@ enum Cmd {
 
 fn main() -> Result<()> {
     match Cli::parse().command {
-        Cmd::Table { input, model, out } => table(&input, &model, &out),
+        Cmd::Table {
+            input,
+            model,
+            out,
+            mode_column,
+        } => table(&input, &model, &out, mode_column.as_deref()),
         Cmd::Damage { input, mode, out } => damage(&input, &mode, &out),
         Cmd::Compare {
             device,
@@ -331,15 +341,25 @@ fn feature_columns(path: &Path, skip: &[String]) -> Result<(Vec<String>, Vec<usi
     Ok((names, cols))
 }
 
-fn table(input: &Path, model: &Path, out: &Path) -> Result<()> {
+fn table(input: &Path, model: &Path, out: &Path, mode_column: Option<&str>) -> Result<()> {
+    use ellipsoid_firmware_example::source::{table_header_modes, NO_MODE};
     // Read the CSV exactly as `ellipsoid replay` does: the trainer's reader, columns matched to the
     // model card's feature names, and the trainer's one f64 → f32 conversion, so the device is fed
     // the very bits the replay scored.
     let blob = std::fs::read(model).with_context(|| format!("cannot read {}", model.display()))?;
     let card = ellipsoid_trainer::data::card::ModelCard::read_for(model, &blob)?;
     let names = card.features;
+    let mut columns = names.clone();
+    if let Some(m) = mode_column {
+        ensure!(
+            !names.iter().any(|n| n == m),
+            "{}: the mode column {m:?} is one of the model's features",
+            model.display()
+        );
+        columns.push(m.to_string());
+    }
     let opts = ellipsoid_trainer::data::ingest::CsvOptions {
-        columns: Some(names.clone()),
+        columns: Some(columns),
         allow_missing: true,
         quiet: true,
         ..Default::default()
@@ -347,17 +367,42 @@ fn table(input: &Path, model: &Path, out: &Path) -> Result<()> {
     let mut reader = ellipsoid_trainer::data::ingest::Reader::open(input, &opts)?;
     let mut body = Vec::new();
     let mut count = 0u32;
+    let mut given = 0u32;
     while let Some(row) = reader.next_row()? {
-        for v in row.values {
+        let (features, mode) = row.values.split_at(names.len());
+        for v in features {
             body.extend_from_slice(&ellipsoid_trainer::device::replay::to_device(*v).to_le_bytes());
+        }
+        if let (Some(name), Some(&m)) = (mode_column, mode.first()) {
+            let word = if m.is_nan() {
+                NO_MODE
+            } else {
+                ensure!(
+                    m.fract() == 0.0 && (0.0..255.0).contains(&m),
+                    "{}: line {}: field {name}: {m} is not a mode (an integer 0 to 254, or empty)",
+                    input.display(),
+                    row.line
+                );
+                given += 1;
+                m as u32
+            };
+            body.extend_from_slice(&word.to_le_bytes());
         }
         count += 1;
     }
-    let mut bytes = table_header(names.len() as u32, count).to_vec();
+    let header = if mode_column.is_some() {
+        table_header_modes(names.len() as u32, count)
+    } else {
+        table_header(names.len() as u32, count)
+    };
+    let mut bytes = header.to_vec();
     bytes.extend_from_slice(&body);
     write_atomic(out, &bytes)?;
+    let modes = mode_column.map_or(String::new(), |m| {
+        format!(", each with its mode from column {m} ({given} given)")
+    });
     println!(
-        "table: {count} readings of {} features -> {}",
+        "table: {count} readings of {} features{modes} -> {}",
         names.len(),
         out.display()
     );
@@ -510,6 +555,31 @@ struct Row {
     top: Option<String>,
     /// The device's `cause=` of a fault (the replay has none).
     cause: Option<String>,
+    /// The bank's mode the reading was scored against (`None`: no bank, or not scored).
+    mode: Option<u8>,
+    /// Whether the drift shift had reached its bound after the reading (`None`: no bank).
+    drift: Option<bool>,
+}
+
+/// A mode as either side writes it: a number, or `-` / empty for none.
+fn mode_field(v: Option<&str>, line: usize) -> Result<Option<u8>> {
+    match v.map(str::trim) {
+        None | Some("") | Some("-") => Ok(None),
+        Some(m) => m
+            .parse()
+            .map(Some)
+            .with_context(|| format!("line {line}: mode {m:?} is not a mode number")),
+    }
+}
+
+/// The drift-at-bound flag as either side writes it: `0`/`1` (or `false`/`true`), empty for none.
+fn drift_field(v: Option<&str>, line: usize) -> Result<Option<bool>> {
+    match v.map(str::trim) {
+        None | Some("") | Some("-") => Ok(None),
+        Some("0") | Some("false") => Ok(Some(false)),
+        Some("1") | Some("true") => Ok(Some(true)),
+        Some(other) => bail!("line {line}: drift flag {other:?}, not 0 or 1"),
+    }
 }
 
 fn kv<'a>(line: &'a str, key: &str) -> Option<&'a str> {
@@ -571,6 +641,8 @@ fn parse_device(path: &Path) -> Result<Device> {
                 },
                 top: kv(line, "top").map(str::to_string),
                 cause: kv(line, "cause").map(str::to_string),
+                mode: mode_field(kv(line, "mode"), ln).with_context(ctx)?,
+                drift: drift_field(kv(line, "drift"), ln).with_context(ctx)?,
             });
         } else if let Some(rest) = line.strip_prefix("pin ") {
             let mut w = rest.split(' ');
@@ -613,6 +685,11 @@ fn parse_replay(path: &Path) -> Result<Vec<Row>> {
         col("event")?,
         col("top_feature")?,
     );
+    // A bank's replay (issue 10) adds the mode and the drift flag; a single model's may not.
+    let (cm, cd) = (
+        h.iter().position(|c| c == "mode"),
+        h.iter().position(|c| c == "drift_at_bound"),
+    );
     let mut rows = Vec::new();
     for (k, rec) in rdr.records().enumerate() {
         let ln = k + 2;
@@ -641,6 +718,10 @@ fn parse_replay(path: &Path) -> Result<Vec<Row>> {
             events: get(ce).to_string(),
             top: Some(get(ct).to_string()).filter(|s| !s.is_empty()),
             cause: None,
+            mode: mode_field(cm.map(get), ln)
+                .with_context(|| format!("{}: field mode", path.display()))?,
+            drift: drift_field(cd.map(get), ln)
+                .with_context(|| format!("{}: field drift_at_bound", path.display()))?,
         });
     }
     Ok(rows)
@@ -682,7 +763,9 @@ fn compare(
     );
     ensure!(!rep.is_empty(), "{}: no readings", replay.display());
     let mut mismatches = Vec::new();
-    let (mut bits_equal, mut tops) = (0usize, 0usize);
+    let (mut bits_equal, mut tops, mut banked, mut drift_at_bound) =
+        (0usize, 0usize, 0usize, 0usize);
+    let mut modes_seen = BTreeSet::new();
     for (k, (d, r)) in dev.rows.iter().zip(&rep).enumerate() {
         let mut why = Vec::new();
         if d.index != k as u32 || r.index != k as u32 {
@@ -709,6 +792,25 @@ fn compare(
                 r.alarm as u8,
                 r.fault as u8,
                 r.events
+            ));
+        }
+        // A bank's log carries the mode and the drift flag on every reading, and they must be
+        // the replay's. A single model's log carries neither: its replay may say mode 0 (the one
+        // model) and no drift, nothing else.
+        if d.drift.is_some() {
+            banked += 1;
+            if (d.mode, d.drift) != (r.mode, r.drift) {
+                why.push(format!(
+                    "mode/drift device {:?}/{:?} replay {:?}/{:?}",
+                    d.mode, d.drift, r.mode, r.drift
+                ));
+            }
+            modes_seen.insert(d.mode);
+            drift_at_bound += usize::from(d.drift == Some(true));
+        } else if d.mode.is_some() || r.mode.is_some_and(|m| m != 0) || r.drift == Some(true) {
+            why.push(format!(
+                "mode/drift device {:?}/{:?} (no bank) replay {:?}/{:?}",
+                d.mode, d.drift, r.mode, r.drift
             ));
         }
         if let Some(t) = &d.top {
@@ -774,9 +876,26 @@ fn compare(
     }
     let raised = rep.iter().filter(|r| r.events.contains("raised")).count();
     let faults = rep.iter().filter(|r| r.verdict == "fault").count();
+    let bank = if banked > 0 {
+        let modes: Vec<String> = modes_seen
+            .iter()
+            .map(|m| m.map_or("-".to_string(), |m| m.to_string()))
+            .collect();
+        let drift_events = rep
+            .iter()
+            .filter(|r| r.events.split('+').any(|e| e == "drift"))
+            .count();
+        format!(
+            ", mode identical on all {banked} (modes seen {}), drift flag identical ({drift_at_bound} readings at \
+             the bound, {drift_events} drift events)",
+            modes.join(" ")
+        )
+    } else {
+        String::new()
+    };
     println!(
         "compare: slot {slot}: {} readings, d2 bit-identical on all {bits_equal} scored, {faults} faults, \
-         {raised} alarms raised ({tops} with the same top feature), pin changes and final LED levels identical",
+         {raised} alarms raised ({tops} with the same top feature){bank}, pin changes and final LED levels identical",
         rep.len()
     );
     Ok(())
