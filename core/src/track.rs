@@ -215,6 +215,8 @@ impl<'a, const N: usize, const M: usize> Tracker<'a, N, M> {
 mod tests {
     use super::*;
     use crate::{blob, AlarmPolicy, FlashModel, ModelMeta, ModelParams, Preprocess, Thresholds};
+    extern crate std;
+    use std::{vec, vec::Vec};
 
     /// A small linear congruential generator (Knuth's MMIX constants), for reproducible readings.
     struct Lcg(u64);
@@ -313,5 +315,399 @@ mod tests {
             faults >= 120 && above >= 100 && events >= 100,
             "{faults} {above} {events}"
         );
+    }
+
+    use crate::bank::{BankParams, DriftSpec, ModeParams};
+    use crate::window::WindowSpec;
+    use crate::Model;
+
+    fn eye2(center: [f32; 2], alarm: f32, clear: f32) -> ModeParams<2> {
+        ModeParams {
+            offset: center,
+            scale: [1.0; 2],
+            mean: [0.0; 2],
+            w: [[1.0, 0.0], [0.0, 1.0]],
+            thresholds: Thresholds { alarm, clear },
+        }
+    }
+
+    fn bank_blob<const N: usize, const M: usize>(p: &BankParams<'_, N, M>) -> Vec<u8> {
+        let mut buf = vec![0u8; blob::max_bank_len(N, M, p.modes.len(), p.drift.is_some())];
+        let n = blob::encode_bank(p, &mut buf).unwrap();
+        buf.truncate(n);
+        buf
+    }
+
+    fn params2<'m>(modes: &'m [ModeParams<2>], select: ModeSelect) -> BankParams<'m, 2, 2> {
+        BankParams {
+            meta: ModelMeta::default(),
+            log_mask: 0,
+            select,
+            modes,
+            window: WindowSpec::single(),
+            drift: None,
+            policy: AlarmPolicy::default(),
+            names_digest: 0,
+        }
+    }
+
+    /// A standard normal pair by the Box–Muller transform.
+    fn normal2(rng: &mut Lcg) -> [f32; 2] {
+        let u1 = f64::from(rng.next()).max(1e-12);
+        let u2 = f64::from(rng.next());
+        let r = (-2.0 * u1.ln()).sqrt();
+        let a = 2.0 * core::f64::consts::PI * u2;
+        [(r * a.cos()) as f32, (r * a.sin()) as f32]
+    }
+
+    /// Two modes 20 σ apart: every reading drawn from a mode is scored against it, and the bank's
+    /// false-alarm rate on each is the single mode's: the alarm limit 9.2103 is the 0.99 quantile
+    /// of χ² with 2 degrees of freedom (closed form: P(χ²₂ > x) = exp(−x/2), so x = −2 ln 0.01).
+    #[test]
+    fn nearest_mode_on_two_well_separated_modes() {
+        let alarm = (-2.0 * 0.01f64.ln()) as f32;
+        let modes = [
+            eye2([0.0, 0.0], alarm, 6.0),
+            eye2([20.0, -20.0], alarm, 6.0),
+        ];
+        let blob = bank_blob(&params2(&modes, ModeSelect::Nearest));
+        let bank = FlashBank::<2, 2>::from_blob(&blob).unwrap();
+        let mut rng = Lcg(99);
+        let n = 20_000;
+        for (k, c) in [[0.0f32, 0.0], [20.0, -20.0]].iter().enumerate() {
+            let mut flagged = 0;
+            for _ in 0..n {
+                let z = normal2(&mut rng);
+                let x = [c[0] + z[0], c[1] + z[1]];
+                let s = bank.score(&x, None, None).unwrap();
+                assert_eq!(usize::from(s.mode), k, "{x:?}");
+                // d² against the chosen mode, by hand.
+                let d2 = (x[0] - c[0]) * (x[0] - c[0]) + (x[1] - c[1]) * (x[1] - c[1]);
+                assert!((s.d2 - d2).abs() <= 1e-5 * d2.max(1.0));
+                flagged += usize::from(s.verdict == Verdict::Above);
+            }
+            // 1 % with a binomial standard deviation of 0.07 %: within ±0.25 % (3.5 σ).
+            let rate = flagged as f64 / n as f64;
+            assert!((rate - 0.01).abs() < 0.0025, "mode {k}: {rate}");
+        }
+        // Half way: the same d² to both, a tie, to the lowest mode; above both limits.
+        let s = bank.score(&[10.0, -10.0], None, None).unwrap();
+        assert_eq!((s.mode, s.d2, s.verdict), (0, 200.0, Verdict::Above));
+    }
+
+    /// The rule is d²ₖ / alarmₖ, not d²ₖ: a reading nearer mode 0 in d² but deeper inside
+    /// mode 1's wider limit is scored against mode 1, and is not flagged although it is outside
+    /// mode 0's ellipsoid.
+    #[test]
+    fn the_nearest_mode_is_the_one_the_reading_is_deepest_inside() {
+        let modes = [eye2([0.0, 0.0], 4.0, 2.0), eye2([5.0, 0.0], 16.0, 8.0)];
+        let blob = bank_blob(&params2(&modes, ModeSelect::Nearest));
+        let bank = FlashBank::<2, 2>::from_blob(&blob).unwrap();
+        // d²₀ = 2.25² = 5.0625 (r = 1.27), d²₁ = 2.75² = 7.5625 (r = 0.47).
+        let s = bank.score(&[2.25, 0.0], None, None).unwrap();
+        assert_eq!((s.mode, s.d2, s.verdict), (1, 7.5625, Verdict::Below));
+        // d²₀ = 1 (r = 0.25), d²₁ = 16 (r = 1): mode 0.
+        let s = bank.score(&[1.0, 0.0], None, None).unwrap();
+        assert_eq!((s.mode, s.d2), (0, 1.0));
+    }
+
+    /// Known mode: the mode given picks the Gaussian; a change of mode restarts the window; no
+    /// mode, or one beyond K, is a fault that does not restart it.
+    #[test]
+    fn known_mode_picks_restarts_and_refuses() {
+        let modes = [eye2([0.0, 0.0], 9.0, 4.0), eye2([10.0, 0.0], 9.0, 4.0)];
+        let mut p = params2(&modes, ModeSelect::Known);
+        p.window = WindowSpec {
+            length: 2,
+            differences: false,
+        };
+        let blob = bank_blob(&p);
+        let mut t = Tracker::<2, 2>::from_blob(&blob).unwrap();
+        let fill = |missing| Err(ReadingFault::WindowFilling { missing });
+        assert_eq!(t.step(&[1.0, 0.0], Some(0)).score, fill(1));
+        let s = t.step(&[3.0, 0.0], Some(0)).score.unwrap();
+        assert_eq!((s.mode, s.d2), (0, 4.0)); // mean (2, 0)
+                                              // Mode 1 is told: the window restarts, then scores against mode 1.
+        assert_eq!(t.step(&[9.0, 0.0], Some(1)).score, fill(1));
+        // No mode: a fault, not a restart (the next reading completes the window).
+        assert_eq!(
+            t.step(&[9.0, 0.0], None).score,
+            Err(ReadingFault::UnknownMode { given: None })
+        );
+        assert_eq!(
+            t.step(&[9.0, 0.0], Some(7)).score,
+            Err(ReadingFault::UnknownMode { given: Some(7) })
+        );
+        let s = t.step(&[13.0, 0.0], Some(1)).score.unwrap();
+        assert_eq!((s.mode, s.d2), (1, 1.0)); // mean (11, 0)
+                                              // Against mode 0 the same reading would be far: the mode really is the one given.
+        assert_eq!(t.step(&[13.0, 0.0], Some(0)).score, fill(1));
+        let s = t.step(&[13.0, 0.0], Some(0)).score.unwrap();
+        assert_eq!((s.mode, s.d2, s.verdict), (0, 169.0, Verdict::Above));
+    }
+
+    fn drift_bank(rate: f32, bound: f32, policy: AlarmPolicy) -> Vec<u8> {
+        let modes = [ModeParams::<1> {
+            offset: [0.0],
+            scale: [1.0],
+            mean: [0.0],
+            w: [[1.0]],
+            thresholds: Thresholds {
+                alarm: 100.0,
+                clear: 50.0,
+            },
+        }];
+        bank_blob(&BankParams::<1, 1> {
+            meta: ModelMeta::default(),
+            log_mask: 0,
+            select: ModeSelect::Nearest,
+            modes: &modes,
+            window: WindowSpec::single(),
+            drift: Some(DriftSpec {
+                rate,
+                bound: [bound],
+            }),
+            policy,
+            names_digest: 0,
+        })
+    }
+
+    /// A constant offset δ: the shift after n readings is δ (1 − (1 − rate)ⁿ) (the closed form
+    /// of sₙ = sₙ₋₁ + rate (δ − sₙ₋₁), s₀ = 0), to within f32 rounding; d² falls as (δ − s)².
+    #[test]
+    fn drift_converges_geometrically_to_a_constant_offset() {
+        let (delta, rate) = (2.0f32, 0.1f32);
+        let blob = drift_bank(rate, 5.0, AlarmPolicy::default());
+        let mut t = Tracker::<1, 1>::from_blob(&blob).unwrap();
+        for n in 1..=200 {
+            let s = t.step(&[delta], None);
+            let d2 = s.score.unwrap().d2;
+            let before = f64::from(delta) * (1.0 - f64::from(rate)).powi(n - 1);
+            // d = δ − s, so √d² follows the closed form with the shift's own error.
+            let tol = 4e-7 * f64::from(n) * f64::from(delta);
+            assert!(
+                (f64::from(d2).sqrt() - before).abs() <= tol,
+                "n = {n}: d² {d2}"
+            );
+            let want = f64::from(delta) * (1.0 - (1.0 - f64::from(rate)).powi(n));
+            let got = f64::from(t.shift()[0]);
+            assert!((got - want).abs() <= tol, "n = {n}: {got} against {want}");
+            assert!(s.step.events.is_empty() && !s.drift_at_bound);
+        }
+        assert!((t.shift()[0] - delta).abs() < 1e-5);
+    }
+
+    /// With a bound below the offset, the shift stops at the bound, and exactly one drift event
+    /// comes, on the reading where the closed form first reaches it: δ (1 − 0.9ⁿ) ≥ 1.5 first
+    /// at n = 14 (0.9¹³ = 0.254, 0.9¹⁴ = 0.229), the reading of index 13.
+    #[test]
+    fn drift_clamps_at_its_bound_with_one_event() {
+        let blob = drift_bank(0.1, 1.5, AlarmPolicy::default());
+        let mut t = Tracker::<1, 1>::from_blob(&blob).unwrap();
+        let mut drift_events = vec![];
+        for i in 0..100u32 {
+            let s = t.step(&[2.0], None);
+            for e in &s.step.events {
+                assert_eq!(e.index, i);
+                drift_events.push(*e);
+            }
+            assert_eq!(s.drift_at_bound, i >= 13, "reading {i}");
+            assert!(t.shift()[0] <= 1.5);
+        }
+        assert_eq!(
+            drift_events,
+            [Event {
+                index: 13,
+                kind: EventKind::Drift { feature: 0 }
+            }]
+        );
+        assert_eq!(t.shift()[0], 1.5);
+        // A reset clears the alarm, not the drift flag.
+        t.reset();
+        assert!(t.drift_at_bound());
+        // The negative side clamps too.
+        let mut t = Tracker::<1, 1>::from_blob(&blob).unwrap();
+        for _ in 0..100 {
+            t.step(&[-3.0], None);
+        }
+        assert_eq!(t.shift()[0], -1.5);
+    }
+
+    /// The shift is frozen while the alarm is raised, on the reading that clears it, on a fault,
+    /// and on a reading above the limit that does not yet raise the alarm.
+    #[test]
+    fn drift_is_frozen_during_an_alarm_and_on_faults() {
+        let policy = AlarmPolicy {
+            raise_after: 2,
+            clear_after: 2,
+            latch: false,
+        };
+        let blob = drift_bank(0.5, 5.0, policy);
+        let mut t = Tracker::<1, 1>::from_blob(&blob).unwrap();
+        t.step(&[1.0], None);
+        assert_eq!(t.shift()[0], 0.5);
+        let frozen = 0.5;
+        // Above (d² ≈ 400), but not yet raised: frozen.
+        let s = t.step(&[20.5], None);
+        assert!(!s.step.alarm && t.shift()[0] == frozen);
+        // Raised.
+        assert!(t.step(&[20.5], None).step.alarm);
+        assert_eq!(t.shift()[0], frozen);
+        // Below the clear limit but still raised: frozen; the clearing reading: frozen.
+        assert!(t.step(&[1.0], None).step.alarm);
+        assert_eq!(t.shift()[0], frozen);
+        let s = t.step(&[1.0], None);
+        assert!(!s.step.alarm && s.step.events[0].kind == EventKind::Cleared);
+        assert_eq!(t.shift()[0], frozen);
+        // A fault: frozen.
+        assert!(t.step(&[f32::NAN], None).step.fault);
+        assert_eq!(t.shift()[0], frozen);
+        // Quiet again: it moves (0.5 + 0.5 · (1 − 0.5) = 0.75).
+        t.step(&[1.0], None);
+        assert_eq!(t.shift()[0], 0.75);
+    }
+
+    /// The chosen mode's contributions are `Model::explain`'s for that mode's single model, bit
+    /// for bit, and they sum to d².
+    #[test]
+    fn contributions_are_the_chosen_modes_explain() {
+        let m0 = ModeParams::<2> {
+            offset: [1.0, -1.0],
+            scale: [0.5, 2.0],
+            mean: [0.1, 0.0],
+            w: [[1.0, 0.0], [-0.7, 1.3]],
+            thresholds: Thresholds {
+                alarm: 9.0,
+                clear: 4.0,
+            },
+        };
+        let m1 = ModeParams::<2> {
+            offset: [30.0, 5.0],
+            ..m0
+        };
+        let modes = [m0, m1];
+        let p = params2(&modes, ModeSelect::Nearest);
+        let blob = bank_blob(&p);
+        let mut t = Tracker::<2, 2>::from_blob(&blob).unwrap();
+        for (x, k) in [([2.0f32, -0.5], 0usize), ([31.0, 6.0], 1), ([34.0, 2.0], 1)] {
+            let mp = modes[k];
+            let single = Model::new(ModelParams {
+                meta: ModelMeta::default(),
+                preprocess: Preprocess {
+                    log_mask: 0,
+                    offset: mp.offset,
+                    scale: mp.scale,
+                },
+                mean: mp.mean,
+                w: mp.w,
+                thresholds: mp.thresholds,
+                policy: AlarmPolicy::default(),
+            })
+            .unwrap();
+            let want = single.explain(&x).unwrap();
+            let s = t.step_explained(&x, None);
+            let got = s.score.unwrap();
+            assert_eq!(usize::from(got.mode), k);
+            assert_eq!(got.d2.to_bits(), want.score.d2.to_bits());
+            let c = s.contributions.unwrap();
+            assert_eq!(c.map(f32::to_bits), want.contributions.map(f32::to_bits));
+            assert!((c.iter().sum::<f32>() - got.d2).abs() <= 1e-4 * got.d2.max(1.0));
+        }
+        // `step` gives no contributions and otherwise the same.
+        let mut u = Tracker::<2, 2>::from_blob(&blob).unwrap();
+        let a = u.step(&[2.0, -0.5], None);
+        let mut v = Tracker::<2, 2>::from_blob(&blob).unwrap();
+        let b = v.step_explained(&[2.0, -0.5], None);
+        assert!(a.contributions.is_none() && b.contributions.is_some());
+        assert_eq!((a.score, a.step), (b.score, b.step));
+    }
+
+    /// A reading with differences and a window: the mean and the difference are scored, with the
+    /// log of the mean on a log feature.
+    #[test]
+    fn windows_with_differences_and_logs_score_the_transformed_vector() {
+        let mode = ModeParams::<2> {
+            offset: [0.0, 0.0],
+            scale: [1.0, 1.0],
+            mean: [0.0, 0.0],
+            w: [[1.0, 0.0], [0.0, 1.0]],
+            thresholds: Thresholds {
+                alarm: 100.0,
+                clear: 50.0,
+            },
+        };
+        let modes = [mode];
+        let p = BankParams::<1, 2> {
+            meta: ModelMeta::default(),
+            log_mask: 0b1,
+            select: ModeSelect::Nearest,
+            modes: &modes,
+            window: WindowSpec {
+                length: 2,
+                differences: true,
+            },
+            drift: None,
+            policy: AlarmPolicy::default(),
+            names_digest: 0,
+        };
+        let blob = bank_blob(&p);
+        let mut t = Tracker::<1, 2>::from_blob(&blob).unwrap();
+        assert!(t.step(&[1.0], None).score.is_err());
+        let s = t.step(&[3.0], None).score.unwrap();
+        // y = (mean 2, difference 2), t = (ln 2, 2).
+        let ln2 = libm::logf(2.0);
+        assert_eq!(s.d2, ln2 * ln2 + 4.0);
+        // A zero: the log feature's fault, and a restart (two more readings to fill).
+        assert_eq!(
+            t.step(&[0.0], None).score,
+            Err(ReadingFault::LogDomain { feature: 0 })
+        );
+        assert_eq!(
+            t.step(&[2.0], None).score,
+            Err(ReadingFault::WindowFilling { missing: 1 })
+        );
+        assert!(t.step(&[2.0], None).score.is_ok());
+    }
+}
+// The RAM figures of the table in the crate docs, pinned at compile time on every 32-bit target
+// (the firmware's): the image fails to build if they move. On a 64-bit host the two borrowed
+// slices of a `FlashBank` are 16 bytes longer (the test `sizes_on_a_64_bit_host`).
+#[cfg(target_pointer_width = "32")]
+const _: () = {
+    use core::mem::size_of;
+    assert!(size_of::<Tracker<'static, 8, 8>>() == 896);
+    assert!(size_of::<Tracker<'static, 8, 16>>() == 1184);
+    assert!(size_of::<Tracker<'static, 16, 16>>() == 1696);
+    assert!(size_of::<Tracker<'static, 16, 32>>() == 2272);
+    assert!(size_of::<FlashBank<'static, 8, 8>>() == 312);
+    assert!(size_of::<FlashBank<'static, 8, 16>>() == 568);
+    assert!(size_of::<FlashBank<'static, 16, 16>>() == 568);
+    assert!(size_of::<FlashBank<'static, 16, 32>>() == 1080);
+    assert!(size_of::<Window<8, 8>>() == 520);
+    assert!(size_of::<Window<8, 16>>() == 520);
+    assert!(size_of::<Window<16, 16>>() == 1032);
+    assert!(size_of::<Window<16, 32>>() == 1032);
+    assert!(size_of::<TrackStep<8>>() == 72);
+    assert!(size_of::<TrackStep<16>>() == 104);
+};
+
+#[cfg(all(test, target_pointer_width = "64"))]
+mod sizes {
+    use super::*;
+    use core::mem::size_of;
+
+    /// The 32-bit figures pinned above, on a 64-bit host: a `FlashBank` (and so a `Tracker`)
+    /// carries two borrowed slices, 8 bytes longer each here; the window and steps hold none.
+    #[test]
+    fn sizes_on_a_64_bit_host() {
+        assert_eq!(size_of::<Tracker<'static, 8, 8>>(), 896 + 16);
+        assert_eq!(size_of::<Tracker<'static, 16, 32>>(), 2272 + 16);
+        assert_eq!(size_of::<FlashBank<'static, 8, 8>>(), 312 + 16);
+        assert_eq!(size_of::<FlashBank<'static, 16, 32>>(), 1080 + 16);
+        assert_eq!(size_of::<Window<8, 8>>(), 520);
+        assert_eq!(size_of::<Window<16, 32>>(), 1032);
+        // What each part is: the ring of 16 readings, the centres of 8 modes, the shift.
+        assert_eq!(size_of::<Window<8, 8>>(), 4 * 16 * 8 + 8);
+        assert_eq!(size_of::<FlashBank<'static, 8, 8>>(), 4 * 8 * 8 + 72);
     }
 }

@@ -283,6 +283,7 @@ impl<const N: usize, const M: usize> Window<N, M> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    extern crate std;
 
     fn spec(length: u8, differences: bool) -> WindowSpec {
         WindowSpec {
@@ -402,5 +403,58 @@ mod tests {
             Window::<2, 4>::new(spec(2, true), 0b100),
             Err(WindowError::LogMask)
         );
+    }
+
+    /// The window mean against an `f64` reference: within the rounding-error bound of a sum of
+    /// `w` terms and one division, `|ŷ − y| ≤ (γ_{w−1} (1 + u) + u) Σ|x| / w` with
+    /// `γₙ = n u / (1 − n u)`, `u = 2⁻²⁴` (Higham, *Accuracy and Stability of Numerical
+    /// Algorithms*, 2nd ed., §3.1 and §4.2; the bound is from memory), for every length and a
+    /// ring that has wrapped many times; and the differences are exact `f32` subtractions.
+    #[test]
+    fn the_window_mean_is_within_the_rounding_bound_of_an_f64_reference() {
+        let mut state = 7u64;
+        let mut next = || {
+            state = state
+                .wrapping_mul(6_364_136_223_846_793_005)
+                .wrapping_add(1_442_695_040_888_963_407);
+            // Values of mixed sign and magnitude, so the sum has cancellation to get wrong.
+            let u = ((state >> 40) as f32) / ((1u64 << 24) as f32);
+            let e = ((state >> 20) % 12) as i32 - 6;
+            (u - 0.3) * 2f32.powi(e)
+        };
+        let u = f64::from(f32::EPSILON) / 2.0;
+        let mut worst = 0.0f64;
+        for length in 1..=MAX_WINDOW as u8 {
+            let mut w = Window::<3, 6>::new(spec(length, true), 0).unwrap();
+            let mut history: std::vec::Vec<[f32; 3]> = std::vec::Vec::new();
+            for _ in 0..100 {
+                let x = [next(), next(), next()];
+                history.push(x);
+                let got = w.push(&x);
+                if history.len() < usize::from(w.need()) {
+                    assert!(got.is_err());
+                    continue;
+                }
+                let y = got.unwrap();
+                let l = usize::from(length);
+                let last = &history[history.len() - l..];
+                for i in 0..3 {
+                    let exact: f64 = last.iter().map(|r| f64::from(r[i])).sum::<f64>() / l as f64;
+                    let abs: f64 = last.iter().map(|r| f64::from(r[i]).abs()).sum::<f64>();
+                    let n = (l - 1) as f64;
+                    let gamma = n * u / (1.0 - n * u);
+                    let bound = (gamma * (1.0 + u) + u) * abs / l as f64;
+                    let err = (f64::from(y[i]) - exact).abs();
+                    assert!(err <= bound, "w = {l}: {} against {exact}", y[i]);
+                    if bound > 0.0 {
+                        worst = worst.max(err / bound);
+                    }
+                    let k = history.len();
+                    assert_eq!(y[3 + i], history[k - 1][i] - history[k - 2][i]);
+                }
+            }
+        }
+        // The check had rounding to see.
+        assert!(worst > 0.0);
     }
 }
