@@ -26,7 +26,7 @@ use crate::source::ReadingSource;
 /// Called once, from the image's entry, and inlined there (as is [`session`]), so that the image's
 /// code and stack are the same as if the entry did all this itself.
 #[inline(always)]
-pub fn run<const N: usize, const T: usize>(
+pub fn run<const N: usize, const T: usize, const D: usize>(
     parts: Parts<impl Board<N>, impl OutputPin, impl OutputPin>,
 ) -> ! {
     let Parts {
@@ -34,7 +34,7 @@ pub fn run<const N: usize, const T: usize>(
         alarm,
         fault,
     } = parts;
-    let ok = session::<_, _, _, N, T>(&mut board, alarm, fault);
+    let ok = session::<_, _, _, N, T, D>(&mut board, alarm, fault);
     board.finish(ok)
 }
 
@@ -42,7 +42,7 @@ pub fn run<const N: usize, const T: usize>(
 /// source. Returns `false` if the source could not be opened (nothing was scored, the fault line
 /// is on).
 #[inline(always)]
-pub fn session<B, A, F, const N: usize, const T: usize>(
+pub fn session<B, A, F, const N: usize, const T: usize, const D: usize>(
     board: &mut B,
     alarm: Line<A>,
     fault: Line<F>,
@@ -56,7 +56,7 @@ where
     // Boot is measured on its own: choosing a model must not cost the stack a copy of one.
     board.start_measuring();
     let slots = board.model_slots();
-    let mut node = Node::<_, _, N, T>::boot(&slots, alarm, fault, board.console());
+    let mut node = Node::<_, _, N, T, D>::boot(&slots, alarm, fault, board.console());
     if let Some(peak) = board.stack_peak() {
         let _ = writeln!(board.console(), "stack boot_peak_bytes={peak}");
     }
@@ -163,7 +163,7 @@ mod tests {
         let mut fault = Mock::new(&[Transaction::set(State::Low)]);
         // d² = 16 (above 9, raise after 1), then 0 (below 4, clear after 1).
         let mut bench = Bench::new(table(&[[4.0, 0.0], [0.0, 0.0]]), true);
-        let ok = session::<_, _, _, 2, 3>(
+        let ok = session::<_, _, _, 2, 3, 4>(
             &mut bench,
             Line::new(alarm.clone(), ActiveLevel::High),
             Line::new(fault.clone(), ActiveLevel::High),
@@ -206,7 +206,7 @@ mod tests {
         let mut fault = Mock::new(&[Transaction::set(State::Low), Transaction::set(State::High)]);
         // A table for 3 features on a node for 2.
         let mut bench = Bench::new(table_header(3, 1).to_vec(), false);
-        let ok = session::<_, _, _, 2, 3>(
+        let ok = session::<_, _, _, 2, 3, 4>(
             &mut bench,
             Line::new(alarm.clone(), ActiveLevel::High),
             Line::new(fault.clone(), ActiveLevel::High),

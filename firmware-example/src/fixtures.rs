@@ -86,3 +86,62 @@ pub fn image_crc(sequence: u32, raise_after: u16) -> u32 {
     let (bytes, len) = slot_image(sequence, raise_after);
     blob::checksum(&bytes[..len - blob::CRC_LEN])
 }
+
+/// Mode `k` of [`bank_image`]'s banks: identity `W` (on the `M` scored values), centred at
+/// `(10 k, 0, ...)`, alarm above 9, clear below 4.
+pub fn bank_mode<const M: usize>(k: usize) -> ellipsoid_core::bank::ModeParams<M> {
+    let mut w = [[0.0; M]; M];
+    for (i, row) in w.iter_mut().enumerate() {
+        row[i] = 1.0;
+    }
+    let mut mean = [0.0; M];
+    mean[0] = 10.0 * k as f32;
+    ellipsoid_core::bank::ModeParams {
+        offset: [0.0; M],
+        scale: [1.0; M],
+        mean,
+        w,
+        thresholds: Thresholds {
+            alarm: 9.0,
+            clear: 4.0,
+        },
+    }
+}
+
+/// A flash slot holding a version 2 bank of 2 raw features and `M` scored ones (`M = 4`: with
+/// differences): `k` modes of [`bank_mode`], the given mode rule, window and drift (rate,
+/// bound on every scored feature), raise and clear after 1. Followed by erased flash.
+pub fn bank_image<const M: usize>(
+    sequence: u32,
+    k: usize,
+    select: ellipsoid_core::bank::ModeSelect,
+    window: ellipsoid_core::window::WindowSpec,
+    drift: Option<(f32, f32)>,
+) -> (Vec<u8>, usize) {
+    use ellipsoid_core::bank::{BankParams, DriftSpec};
+    let modes: Vec<_> = (0..k).map(bank_mode::<M>).collect();
+    let p = BankParams::<2, M> {
+        meta: ModelMeta {
+            model_id: 8,
+            trained_at: 0,
+            sequence,
+        },
+        log_mask: 0,
+        select,
+        modes: &modes,
+        window,
+        drift: drift.map(|(rate, bound)| DriftSpec {
+            rate,
+            bound: [bound; M],
+        }),
+        policy: AlarmPolicy {
+            raise_after: 1,
+            clear_after: 1,
+            latch: false,
+        },
+        names_digest: blob::names_digest(["a", "b"]),
+    };
+    let mut buf = vec![0xFF; 1024];
+    let len = blob::encode_bank(&p, &mut buf).unwrap();
+    (buf, len)
+}

@@ -31,7 +31,8 @@ const fn parse_n(s: &str) -> usize {
 #[cortex_m_rt::entry]
 fn main() -> ! {
     use ellipsoid_firmware_example::{app, board::selected};
-    app::run::<N, { ellipsoid_core::tri(N) }>(selected::take())
+    // A model bank that scores the first differences too holds 2 N values a sample.
+    app::run::<N, { ellipsoid_core::tri(N) }, { 2 * N }>(selected::take())
 }
 
 /// The default board feature is on in host builds too (`cargo build --workspace`), where there is

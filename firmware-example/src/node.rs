@@ -16,6 +16,7 @@
 //! pin fault off level=low at=boot             (every change of a pin: line, logical, electrical, reading)
 //! r 12 d2=40490fdb v=above alarm=1 fault=0 event=raised top=3
 //! r 13 d2=- v=fault alarm=1 fault=1 event=fault cause=not-finite:2
+//! r 14 d2=3f800000 v=below mode=1 alarm=0 fault=0 event=- drift=0    (a model bank)
 //! probation passed slot=B at=0: ...          (the first scored reading of a model on probation)
 //! fallback from=B at=59: ...                 (or: every reading of its probation faulted; then
 //! model slot=A ... fallback=1                 the slots again, and the model fallen back to)
@@ -28,10 +29,22 @@
 //! `d2` is the bit pattern of the f32 d² as 8 hex digits, `alarm` and `fault` the logical levels
 //! after the reading, `event` the state machine's events joined with `+` (`-` for none), and `top`
 //! (on a raised alarm only) the feature with the largest contribution to d².
+//!
+//! A model bank (format version 2, see [`crate::slots::SlotModel::Bank`]) is scored through the
+//! core's `Tracker` (window, mode, alarm machine, drift), and its lines carry two more fields:
+//! `mode`, the mode the reading was scored against (`-` on a fault), and `drift`, 1 once the drift
+//! shift has reached its bound on some feature since the model was loaded (its first reading at
+//! the bound also carries the event `drift`). Its model line adds the bank's shape: `modes=`,
+//! `select=` (nearest or known), `window=`, `differences=` and `drift=`. `top` of a bank may name
+//! a difference feature: index `N + i` is feature `i`'s first difference. A single model's lines
+//! are as they were before banks.
 
 use core::fmt::{self, Write};
 
-use ellipsoid_core::{AlarmMachine, EventKind, Explained, ReadingFault, Scored, Step, Verdict};
+use ellipsoid_core::track::{TrackStep, Tracker};
+use ellipsoid_core::{
+    AlarmMachine, EventKind, Explained, ReadingFault, Scored, Status, Step, Verdict,
+};
 use embedded_hal::digital::OutputPin;
 
 use crate::pins::{Line, PinChange};
@@ -41,8 +54,8 @@ use crate::source::ReadingSource;
 /// Score one reading. Kept out of line so that the image check for panic machinery (see the
 /// README) can find the scoring path by its symbol.
 #[inline(never)]
-pub fn score<const N: usize, const T: usize>(
-    model: &SlotModel<'_, N, T>,
+pub fn score<const N: usize, const T: usize, const D: usize>(
+    model: &SlotModel<'_, N, T, D>,
     x: &[f32; N],
 ) -> Result<Scored, ReadingFault> {
     model.score(x)
@@ -50,11 +63,63 @@ pub fn score<const N: usize, const T: usize>(
 
 /// Score a reading and split d² per feature (only on a raised alarm). Out of line, as [`score`].
 #[inline(never)]
-pub fn explain<const N: usize, const T: usize>(
-    model: &SlotModel<'_, N, T>,
+pub fn explain<const N: usize, const T: usize, const D: usize>(
+    model: &SlotModel<'_, N, T, D>,
     x: &[f32; N],
 ) -> Result<Explained<N>, ReadingFault> {
     model.explain(x)
+}
+
+/// One reading of a model bank through its tracker: window, mode, score, alarm machine and
+/// drift; and, on a reading that raises the alarm, the feature of the chosen mode with the
+/// largest contribution to d² (`top`). Out of line, as [`score`], so that the image checks (panic
+/// machinery, flash per group) find the bank's path.
+///
+/// The contributions are computed only when the alarm is raised, as for a single model: while
+/// the alarm is quiet (the only state a raise can come from) the tracker's state before the
+/// reading is kept, and if the reading raises, that copy takes the same reading again through
+/// `Tracker::step_explained`, which is the same step to the bit plus the split. Computing the
+/// split (in `f64`) on every reading would cost about ten times the step; the copy costs
+/// `size_of` the tracker in stack and a `memcpy` (see the figures).
+#[inline(never)]
+pub fn track<const N: usize, const M: usize>(
+    tracker: &mut Tracker<'_, N, M>,
+    x: &[f32; N],
+    mode: Option<u8>,
+) -> (TrackStep<M>, Option<usize>) {
+    let before = (tracker.alarm().status() == Status::Quiet).then(|| tracker.clone());
+    let step = tracker.step(x, mode);
+    let raised = step.step.events.iter().any(|e| e.kind == EventKind::Raised);
+    let top = match (raised, before) {
+        (true, Some(mut b)) => explain_bank(&mut b, x, mode),
+        _ => None,
+    };
+    (step, top)
+}
+
+/// The chosen mode's largest contribution on a reading, by the core's rule (`Explained::top`,
+/// as the host's replay picks it). Out of line, as [`explain`].
+#[inline(never)]
+fn explain_bank<const N: usize, const M: usize>(
+    tracker: &mut Tracker<'_, N, M>,
+    x: &[f32; N],
+    mode: Option<u8>,
+) -> Option<usize> {
+    let t = tracker.step_explained(x, mode);
+    match (t.score, t.contributions) {
+        (Ok(b), Some(contributions)) => Some(
+            Explained {
+                score: Scored {
+                    d2: b.d2,
+                    verdict: b.verdict,
+                },
+                contributions,
+            }
+            .top()
+            .0,
+        ),
+        _ => None,
+    }
 }
 
 /// Feed one score to the alarm state machine. Out of line, as [`score`], so that the image's
@@ -77,13 +142,19 @@ pub struct Summary {
 ///
 /// The model is a [`SlotModel`]: an `f32` model is a checked view of the blob in its slot
 /// (lifetime `'m`, `4 N + 48` bytes of it in RAM), never a decoded copy; a fixed-point model has
-/// no in-flash form and is a RAM copy of its parameters. The enum takes the larger of the two
-/// (the fixed model is 88 bytes at N = 5, see `slots::SlotModel`). `T` must be `ellipsoid_core::tri(N)`: the
-/// fixed-point model's coefficient count (checked at compile time).
+/// no in-flash form and is a RAM copy of its parameters; a bank is a checked view too, scored
+/// through a `Tracker` the node keeps beside it (the window's ring, the alarm machine and the
+/// drift shift). The enum takes the largest of them (the fixed model is 88 bytes at N = 5, see
+/// `slots::SlotModel`). `T` must be `ellipsoid_core::tri(N)`: the fixed-point model's
+/// coefficient count (checked at compile time). `D` is the scored length of a bank with
+/// differences the build holds, `2 N`; any other value refuses such banks.
 #[derive(Debug)]
-pub struct Node<'m, A, F, const N: usize, const T: usize> {
-    model: Option<SlotModel<'m, N, T>>,
+pub struct Node<'m, A, F, const N: usize, const T: usize, const D: usize> {
+    model: Option<SlotModel<'m, N, T, D>>,
+    /// The alarm machine of a single model (a bank's is in its tracker).
     machine: AlarmMachine,
+    /// The tracker of a bank.
+    tracks: Option<Tracks<'m, N, D>>,
     alarm: Line<A>,
     fault: Line<F>,
     /// The slot in use, its blob's length, and the probation of its model.
@@ -136,6 +207,61 @@ fn report_slot(out: &mut impl Write, slots: &[Slot<'_>], slot: &Slot<'_>, report
     };
 }
 
+/// The tracker of a bank, of either scored length.
+#[derive(Debug)]
+enum Tracks<'m, const N: usize, const D: usize> {
+    /// `M = N`.
+    Plain(Tracker<'m, N, N>),
+    /// `M = D = 2 N` (differences).
+    Diff(Tracker<'m, N, D>),
+}
+
+impl<const N: usize, const D: usize> Tracks<'_, N, D> {
+    fn alarm(&self) -> &AlarmMachine {
+        match self {
+            Tracks::Plain(t) => t.alarm(),
+            Tracks::Diff(t) => t.alarm(),
+        }
+    }
+
+    /// One reading: what the log line needs.
+    fn step(&mut self, x: &[f32; N], mode: Option<u8>) -> BankLine {
+        match self {
+            Tracks::Plain(t) => BankLine::of(track(t, x, mode)),
+            Tracks::Diff(t) => BankLine::of(track(t, x, mode)),
+        }
+    }
+}
+
+/// A bank's reading, with the dimension `M` erased.
+struct BankLine {
+    score: Result<(u8, Scored), ReadingFault>,
+    step: Step,
+    /// The feature (of the scored vector) with the largest contribution, on a raised alarm.
+    top: Option<usize>,
+    drift_at_bound: bool,
+}
+
+impl BankLine {
+    fn of<const M: usize>((t, top): (TrackStep<M>, Option<usize>)) -> Self {
+        let score = t.score.map(|b| {
+            (
+                b.mode,
+                Scored {
+                    d2: b.d2,
+                    verdict: b.verdict,
+                },
+            )
+        });
+        Self {
+            score,
+            step: t.step,
+            top,
+            drift_at_bound: t.drift_at_bound,
+        }
+    }
+}
+
 struct Cause(ReadingFault);
 
 impl fmt::Display for Cause {
@@ -144,20 +270,84 @@ impl fmt::Display for Cause {
             ReadingFault::NotFinite { feature } => write!(f, "not-finite:{feature}"),
             ReadingFault::LogDomain { feature } => write!(f, "log-domain:{feature}"),
             ReadingFault::Overflow => f.write_str("overflow"),
+            ReadingFault::WindowFilling { missing } => write!(f, "window-filling:{missing}"),
+            ReadingFault::UnknownMode { given: Some(k) } => write!(f, "unknown-mode:{k}"),
+            ReadingFault::UnknownMode { given: None } => f.write_str("unknown-mode:-"),
             _ => f.write_str("other"),
         }
     }
 }
 
-impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A, F, N, T> {
+/// Write one reading's line. `mode` and `drift` are `Some` for a bank only (`mode` then holds
+/// the chosen mode, `None` on a fault), so a single model's line is as it was before banks.
+#[allow(clippy::too_many_arguments)]
+fn report_reading(
+    out: &mut impl Write,
+    index: u32,
+    scored: &Result<Scored, ReadingFault>,
+    mode: Option<Option<u8>>,
+    step: &Step,
+    drift: Option<bool>,
+    top: Option<usize>,
+) {
+    let _ = write!(out, "r {index} ");
+    let _ = match scored {
+        Ok(s) => write!(
+            out,
+            "d2={:08x} v={}",
+            s.d2.to_bits(),
+            match s.verdict {
+                Verdict::Above => "above",
+                Verdict::Below => "below",
+            }
+        ),
+        Err(_) => write!(out, "d2=- v=fault"),
+    };
+    let _ = match mode {
+        Some(Some(k)) => write!(out, " mode={k}"),
+        Some(None) => write!(out, " mode=-"),
+        None => Ok(()),
+    };
+    let _ = write!(
+        out,
+        " alarm={} fault={} event=",
+        u8::from(step.alarm),
+        u8::from(step.fault)
+    );
+    if step.events.is_empty() {
+        let _ = out.write_char('-');
+    }
+    for (k, e) in step.events.iter().enumerate() {
+        if k > 0 {
+            let _ = out.write_char('+');
+        }
+        let _ = out.write_str(EventKind::name(&e.kind));
+    }
+    if let Some(d) = drift {
+        let _ = write!(out, " drift={}", u8::from(d));
+    }
+    if let Some(t) = top {
+        let _ = write!(out, " top={t}");
+    }
+    if let Err(fault) = scored {
+        let _ = write!(out, " cause={}", Cause(*fault));
+    }
+    let _ = writeln!(out);
+}
+
+impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize, const D: usize>
+    Node<'m, A, F, N, T, D>
+{
     /// Check the slots, take the newest valid model, and drive both lines to their first levels:
     /// alarm off, and fault on if no slot holds a valid model. Reports every slot and pin.
     pub fn boot(slots: &[Slot<'m>], alarm: Line<A>, fault: Line<F>, out: &mut impl Write) -> Self {
         const { assert!(T == ellipsoid_core::tri(N), "T must be tri(N)") };
-        let chosen = slots::choose::<N, T>(slots, None, |slot, r| report_slot(out, slots, slot, r));
+        let chosen =
+            slots::choose::<N, T, D>(slots, None, |slot, r| report_slot(out, slots, slot, r));
         let mut node = Self {
             model: None,
             machine: AlarmMachine::without_model(),
+            tracks: None,
             alarm,
             fault,
             slot: None,
@@ -165,7 +355,7 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A,
             index_base: 0,
         };
         node.take(chosen, slots, false, out);
-        let (a, f) = (node.machine.alarm_active(), node.machine.fault().is_some());
+        let (a, f) = (node.alarm().alarm_active(), node.alarm().fault().is_some());
         node.drive(a, f, None, out);
         node
     }
@@ -173,12 +363,21 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A,
     /// Put the chosen model (or none) in use, and report it.
     fn take(
         &mut self,
-        chosen: Option<Chosen<'m, N, T>>,
+        chosen: Option<Chosen<'m, N, T, D>>,
         slots: &[Slot<'m>],
         fell_back: bool,
         out: &mut impl Write,
     ) {
         let name = |i: usize| slots.get(i).map_or("?", |s| s.name);
+        // A bank's tracker (its check at load built one, so this cannot fail; if it did, the node
+        // would take no model rather than score one it cannot track).
+        let tracks = match chosen.as_ref().map(|c| c.model) {
+            Some(SlotModel::Bank(b)) => Tracker::new(b).ok().map(Tracks::Plain),
+            Some(SlotModel::BankDiff(b)) => Tracker::new(b).ok().map(Tracks::Diff),
+            _ => None,
+        };
+        let chosen = chosen.filter(|c| !c.model.is_bank() || tracks.is_some());
+        self.tracks = tracks;
         let Some(c) = chosen else {
             let _ = writeln!(out, "model none");
             self.model = None;
@@ -188,9 +387,9 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A,
             return;
         };
         let meta = c.model.meta();
-        let _ = writeln!(
+        let _ = write!(
             out,
-            "model slot={} seq={} id={:#010x} crc={:#010x} mark={}{}{}",
+            "model slot={} seq={} id={:#010x} crc={:#010x} mark={}{}",
             name(c.slot),
             meta.sequence,
             meta.model_id,
@@ -201,8 +400,23 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A,
             } else {
                 ""
             },
-            if fell_back { " fallback=1" } else { "" }
         );
+        let shape = match &c.model {
+            SlotModel::Bank(b) => Some((b.modes(), b.select(), b.window(), b.has_drift())),
+            SlotModel::BankDiff(b) => Some((b.modes(), b.select(), b.window(), b.has_drift())),
+            _ => None,
+        };
+        if let Some((k, select, window, drift)) = shape {
+            let _ = write!(
+                out,
+                " modes={k} select={} window={} differences={} drift={}",
+                select.name(),
+                window.length,
+                u8::from(window.differences),
+                u8::from(drift)
+            );
+        }
+        let _ = writeln!(out, "{}", if fell_back { " fallback=1" } else { "" });
         // A model taken in a fall-back is not put on probation again: the node does not bounce.
         self.probation = if fell_back {
             Probation::none()
@@ -224,14 +438,19 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A,
     }
 
     /// The model in use, if any.
-    pub const fn model(&self) -> Option<&SlotModel<'m, N, T>> {
+    pub const fn model(&self) -> Option<&SlotModel<'m, N, T, D>> {
         self.model.as_ref()
+    }
+
+    /// The alarm machine in use: the single model's, or the bank's tracker's.
+    fn alarm(&self) -> &AlarmMachine {
+        self.tracks.as_ref().map_or(&self.machine, Tracks::alarm)
     }
 
     /// The reading source cannot deliver readings (an unusable table, a dead sensor bus): nothing
     /// can be scored, so the fault line goes on. The alarm line keeps its level.
     pub fn source_failed(&mut self, out: &mut impl Write) {
-        let alarm = self.machine.alarm_active();
+        let alarm = self.alarm().alarm_active();
         self.drive(alarm, true, None, out);
     }
 
@@ -251,7 +470,34 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A,
     /// Score one reading, update the state machine and the lines, and report it. Returns `None`
     /// (and scores nothing) when there is no valid model.
     pub fn step(&mut self, x: &[f32; N], out: &mut impl Write) -> Option<Step> {
+        self.step_with_mode(x, None, out)
+    }
+
+    /// [`Node::step`] with the mode the machine's controller gave with the reading, for a
+    /// known-mode bank (every other model ignores it).
+    pub fn step_with_mode(
+        &mut self,
+        x: &[f32; N],
+        mode: Option<u8>,
+        out: &mut impl Write,
+    ) -> Option<Step> {
         let model = self.model.as_ref()?;
+        if let Some(t) = self.tracks.as_mut() {
+            let index = self.index_base + t.alarm().next_index();
+            let line = t.step(x, mode);
+            let scored = line.score.map(|(_, s)| s);
+            report_reading(
+                out,
+                index,
+                &scored,
+                Some(line.score.ok().map(|(k, _)| k)),
+                &line.step,
+                Some(line.drift_at_bound),
+                line.top,
+            );
+            self.drive(line.step.alarm, line.step.fault, Some(index), out);
+            return Some(line.step);
+        }
         let index = self.index_base + self.machine.next_index();
         let scored = score(model, x);
         let step = alarm_update(&mut self.machine, &scored);
@@ -261,41 +507,7 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A,
         } else {
             None
         };
-        let _ = write!(out, "r {index} ");
-        let _ = match &scored {
-            Ok(s) => write!(
-                out,
-                "d2={:08x} v={}",
-                s.d2.to_bits(),
-                match s.verdict {
-                    Verdict::Above => "above",
-                    Verdict::Below => "below",
-                }
-            ),
-            Err(_) => write!(out, "d2=- v=fault"),
-        };
-        let _ = write!(
-            out,
-            " alarm={} fault={} event=",
-            u8::from(step.alarm),
-            u8::from(step.fault)
-        );
-        if step.events.is_empty() {
-            let _ = out.write_char('-');
-        }
-        for (k, e) in step.events.iter().enumerate() {
-            if k > 0 {
-                let _ = out.write_char('+');
-            }
-            let _ = out.write_str(EventKind::name(&e.kind));
-        }
-        if let Some(t) = top {
-            let _ = write!(out, " top={t}");
-        }
-        if let Err(fault) = scored {
-            let _ = write!(out, " cause={}", Cause(fault));
-        }
-        let _ = writeln!(out);
+        report_reading(out, index, &scored, None, &step, None, top);
         self.drive(step.alarm, step.fault, Some(index), out);
         Some(step)
     }
@@ -320,9 +532,9 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A,
             let _ = writeln!(out, "not scoring: no valid model");
             return summary;
         }
-        while let Some(x) = source.next_reading() {
-            let at = self.index_base + self.machine.next_index();
-            let faulted = match self.step(&x, out) {
+        while let Some((x, mode)) = source.next_with_mode() {
+            let at = self.index_base + self.alarm().next_index();
+            let faulted = match self.step_with_mode(&x, mode, out) {
                 Some(s) if s.fault => {
                     summary.faults += 1;
                     true
@@ -373,7 +585,8 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A,
             from.and_then(|i| slots.get(i)).map_or("?", |s| s.name),
             slots::PROBATION_READINGS
         );
-        let chosen = slots::choose::<N, T>(slots, from, |slot, r| report_slot(out, slots, slot, r));
+        let chosen =
+            slots::choose::<N, T, D>(slots, from, |slot, r| report_slot(out, slots, slot, r));
         if chosen.is_none() {
             let _ = writeln!(
                 out,
@@ -383,7 +596,7 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize> Node<'m, A,
         }
         self.index_base = at + 1;
         self.take(chosen, slots, true, out);
-        let (a, f) = (self.machine.alarm_active(), self.machine.fault().is_some());
+        let (a, f) = (self.alarm().alarm_active(), self.alarm().fault().is_some());
         self.drive(a, f, Some(at), out);
     }
 
@@ -434,7 +647,7 @@ mod tests {
         alarm: &Mock,
         fault: &Mock,
         out: &mut String,
-    ) -> Node<'m, Mock, Mock, 2, 3> {
+    ) -> Node<'m, Mock, Mock, 2, 3, 4> {
         Node::boot(
             slots,
             Line::new(alarm.clone(), ActiveLevel::High),
@@ -462,7 +675,7 @@ mod tests {
             bytes: &a,
         }];
         let mut out = String::new();
-        let mut node = Node::<_, _, 2, 3>::boot(
+        let mut node = Node::<_, _, 2, 3, 4>::boot(
             &slots,
             Line::new(alarm.clone(), ActiveLevel::Low),
             Line::new(fault.clone(), ActiveLevel::High),
@@ -754,6 +967,308 @@ mod tests {
         fault.done();
     }
 
+    use ellipsoid_core::bank::ModeSelect;
+    use ellipsoid_core::window::WindowSpec;
+
+    /// A pin that takes any level: for runs whose pin changes are checked in the log.
+    #[derive(Debug)]
+    struct AnyPin;
+
+    impl embedded_hal::digital::ErrorType for AnyPin {
+        type Error = core::convert::Infallible;
+    }
+
+    impl OutputPin for AnyPin {
+        fn set_low(&mut self) -> Result<(), Self::Error> {
+            Ok(())
+        }
+        fn set_high(&mut self) -> Result<(), Self::Error> {
+            Ok(())
+        }
+    }
+
+    /// Boot a 2-feature node whose banks with differences hold `D` values, on free pins.
+    fn free_boot<'m, const D: usize>(
+        slots: &[Slot<'m>],
+        out: &mut String,
+    ) -> Node<'m, AnyPin, AnyPin, 2, 3, D> {
+        Node::boot(
+            slots,
+            Line::new(AnyPin, ActiveLevel::High),
+            Line::new(AnyPin, ActiveLevel::High),
+            out,
+        )
+    }
+
+    /// The `r` lines of a log.
+    fn reading_lines(out: &str) -> Vec<&str> {
+        out.lines().filter(|l| l.starts_with("r ")).collect()
+    }
+
+    /// A 2-feature reading table whose rows carry modes (`source::NO_MODE` for none).
+    fn mode_table(rows: &[([f32; 2], u32)]) -> Vec<u8> {
+        let mut b = crate::source::table_header_modes(2, rows.len() as u32).to_vec();
+        for (x, m) in rows {
+            for v in x {
+                b.extend_from_slice(&v.to_le_bytes());
+            }
+            b.extend_from_slice(&m.to_le_bytes());
+        }
+        b
+    }
+
+    fn one_slot(bytes: &[u8]) -> [Slot<'_>; 1] {
+        [Slot { name: "A", bytes }]
+    }
+
+    #[test]
+    fn a_nearest_mode_bank_logs_each_readings_mode_and_matches_the_cores_tracker() {
+        let (a, len) =
+            crate::fixtures::bank_image::<2>(1, 2, ModeSelect::Nearest, WindowSpec::single(), None);
+        let slots = one_slot(&a);
+        // Mode 0 is centred at 0, mode 1 at 10: 5 is 25 from both (a tie: the lowest mode), and
+        // above both alarms (9), so it raises; 11 is mode 1's, and clears.
+        let readings = [
+            [0.0, 0.0],
+            [10.0, 1.0],
+            [5.0, 0.0],
+            [11.0, 0.0],
+            [f32::NAN, 0.0],
+        ];
+        let mut reference = ellipsoid_core::track::Tracker::<2, 2>::from_blob(&a[..len]).unwrap();
+        let want: Vec<_> = readings
+            .iter()
+            .map(|x| {
+                let s = reference.step(x, None);
+                s.score.map(|b| (b.mode, b.d2.to_bits())).ok()
+            })
+            .collect();
+        let one = 1.0f32.to_bits();
+        assert_eq!(
+            want,
+            [
+                Some((0, 0)),
+                Some((1, one)),
+                Some((0, 25.0f32.to_bits())),
+                Some((1, one)),
+                None
+            ]
+        );
+        let rows = table(&readings);
+        let mut src = Table::<2>::new(&rows).unwrap();
+        let mut alarm = Mock::new(&[
+            Transaction::set(State::Low),
+            Transaction::set(State::High),
+            Transaction::set(State::Low),
+        ]);
+        let mut fault = Mock::new(&[Transaction::set(State::Low), Transaction::set(State::High)]);
+        let mut out = String::new();
+        let mut node = Node::<_, _, 2, 3, 4>::boot(
+            &slots,
+            Line::new(alarm.clone(), ActiveLevel::High),
+            Line::new(fault.clone(), ActiveLevel::High),
+            &mut out,
+        );
+        assert!(node.model().is_some_and(|m| m.is_bank()), "{out}");
+        let summary = node.run(&mut src, &mut out);
+        assert_eq!(
+            summary,
+            Summary {
+                scored: 4,
+                faults: 1
+            }
+        );
+        let crc = blob::checksum(&a[..len - blob::CRC_LEN]);
+        assert!(
+            out.contains(&format!(
+                "model slot=A seq=1 id=0x00000008 crc={crc:#010x} mark=unconfirmed modes=2 select=nearest window=1 differences=0 drift=0\n"
+            )),
+            "{out}"
+        );
+        assert_eq!(
+            reading_lines(&out),
+            [
+                "r 0 d2=00000000 v=below mode=0 alarm=0 fault=0 event=- drift=0",
+                "r 1 d2=3f800000 v=below mode=1 alarm=0 fault=0 event=- drift=0",
+                // 25.0f32 = 0x41c80000.
+                "r 2 d2=41c80000 v=above mode=0 alarm=1 fault=0 event=raised drift=0 top=0",
+                "r 3 d2=3f800000 v=below mode=1 alarm=0 fault=0 event=cleared drift=0",
+                "r 4 d2=- v=fault mode=- alarm=0 fault=1 event=fault drift=0 cause=not-finite:0",
+            ],
+            "{out}"
+        );
+        alarm.done();
+        fault.done();
+    }
+
+    #[test]
+    fn a_known_mode_bank_takes_the_mode_from_the_table_and_faults_until_its_window_is_whole() {
+        let w = WindowSpec {
+            length: 2,
+            differences: false,
+        };
+        let (a, _) = crate::fixtures::bank_image::<2>(1, 2, ModeSelect::Known, w, None);
+        let slots = one_slot(&a);
+        let mut out = String::new();
+        let mut node = free_boot::<4>(&slots, &mut out);
+        let none = crate::source::NO_MODE;
+        let rows = mode_table(&[
+            ([0.0, 0.0], 0),     // the window fills
+            ([2.0, 0.0], 0),     // mean (1, 0) against mode 0
+            ([10.0, 0.0], 1),    // a change of mode restarts the window
+            ([10.0, 0.0], 1),    // mean (10, 0) against mode 1
+            ([10.0, 0.0], none), // no mode: a fault, not a restart
+            ([12.0, 0.0], 7),    // no such mode
+            ([12.0, 0.0], 1), // mean (12, 0): a reading without a valid mode still enters the window
+        ]);
+        let mut src = Table::<2>::new(&rows).unwrap();
+        let summary = node.run(&mut src, &mut out);
+        assert_eq!(
+            summary,
+            Summary {
+                scored: 3,
+                faults: 4
+            },
+            "{out}"
+        );
+        assert_eq!(
+            reading_lines(&out),
+            [
+                "r 0 d2=- v=fault mode=- alarm=0 fault=1 event=fault drift=0 cause=window-filling:1",
+                "r 1 d2=3f800000 v=below mode=0 alarm=0 fault=0 event=fault-cleared drift=0",
+                "r 2 d2=- v=fault mode=- alarm=0 fault=1 event=fault drift=0 cause=window-filling:1",
+                "r 3 d2=00000000 v=below mode=1 alarm=0 fault=0 event=fault-cleared drift=0",
+                "r 4 d2=- v=fault mode=- alarm=0 fault=1 event=fault drift=0 cause=unknown-mode:-",
+                "r 5 d2=- v=fault mode=- alarm=0 fault=1 event=fault drift=0 cause=unknown-mode:7",
+                "r 6 d2=40800000 v=below mode=1 alarm=0 fault=0 event=fault-cleared drift=0",
+            ],
+            "{out}"
+        );
+    }
+
+    #[test]
+    fn drift_follows_a_normal_reading_to_its_bound_and_says_so_once() {
+        let (a, _) = crate::fixtures::bank_image::<2>(
+            1,
+            1,
+            ModeSelect::Nearest,
+            WindowSpec::single(),
+            Some((0.5, 1.0)),
+        );
+        let slots = one_slot(&a);
+        let mut out = String::new();
+        let mut node = free_boot::<4>(&slots, &mut out);
+        assert!(
+            out.contains(" modes=1 select=nearest window=1 differences=0 drift=1\n"),
+            "{out}"
+        );
+        // d² = 9, not above 9: normal, so the centre moves half way, 1.5, past its bound 1.
+        node.step(&[3.0, 0.0], &mut out);
+        // Then (3 − 1)² = 4: the shift stays at its bound, and the event is not repeated.
+        node.step(&[3.0, 0.0], &mut out);
+        assert_eq!(
+            reading_lines(&out),
+            [
+                "r 0 d2=41100000 v=below mode=0 alarm=0 fault=0 event=drift drift=1",
+                "r 1 d2=40800000 v=below mode=0 alarm=0 fault=0 event=- drift=1",
+            ],
+            "{out}"
+        );
+    }
+
+    #[test]
+    fn a_bank_with_differences_needs_a_build_that_holds_two_n_and_a_fixed_point_bank_is_refused() {
+        let w = WindowSpec {
+            length: 1,
+            differences: true,
+        };
+        let (a, _) = crate::fixtures::bank_image::<4>(1, 1, ModeSelect::Nearest, w, None);
+        let slots = one_slot(&a);
+        let mut out = String::new();
+        let mut node = free_boot::<4>(&slots, &mut out);
+        assert!(
+            matches!(node.model(), Some(SlotModel::BankDiff(_))),
+            "{out}"
+        );
+        assert!(out.contains(" differences=1 drift=0\n"), "{out}");
+        // Differences need two readings; then (x, Δx) = (1, 0, 1 − 0, 0): d² = 2.
+        node.step(&[0.0, 0.0], &mut out);
+        node.step(&[1.0, 0.0], &mut out);
+        assert_eq!(
+            reading_lines(&out),
+            [
+                "r 0 d2=- v=fault mode=- alarm=0 fault=1 event=fault drift=0 cause=window-filling:1",
+                "r 1 d2=40000000 v=below mode=0 alarm=0 fault=0 event=fault-cleared drift=0",
+            ],
+            "{out}"
+        );
+        // A build of D = N cannot hold 2 N scored values: the slot is refused, nothing scored.
+        let mut out = String::new();
+        let node = free_boot::<2>(&slots, &mut out);
+        assert!(node.model().is_none(), "{out}");
+        assert!(
+            out.starts_with(
+                "slot A unusable: blob holds an invalid model bank: 2 raw features with differences \
+                 score 4 values, but 2 were asked for\nmodel none\n"
+            ),
+            "{out}"
+        );
+        // The fixed-point flag on a bank, resealed with a valid CRC: refused as well.
+        let (mut f, len) =
+            crate::fixtures::bank_image::<2>(1, 1, ModeSelect::Nearest, WindowSpec::single(), None);
+        f[6] |= blob::FLAG_FIXED;
+        let crc = blob::checksum(&f[..len - blob::CRC_LEN]);
+        f[len - blob::CRC_LEN..len].copy_from_slice(&crc.to_le_bytes());
+        let slots = one_slot(&f);
+        let mut out = String::new();
+        let mut node = free_boot::<4>(&slots, &mut out);
+        assert!(node.model().is_none(), "{out}");
+        assert!(out.starts_with("slot A unusable: "), "{out}");
+        assert_eq!(node.step(&[0.0, 0.0], &mut out), None);
+        assert!(!out.contains("\nr "), "{out}");
+    }
+
+    #[test]
+    fn a_newer_bank_wins_the_slots_and_a_known_bank_told_no_mode_falls_back() {
+        let n = slots::PROBATION_READINGS as usize;
+        let a = blob_bytes(1, 1);
+        let (b, _) =
+            crate::fixtures::bank_image::<2>(2, 2, ModeSelect::Known, WindowSpec::single(), None);
+        let slots = slots_ab(&a, &b);
+        let mut out = String::new();
+        let mut node = free_boot::<4>(&slots, &mut out);
+        assert!(
+            node.model()
+                .is_some_and(|m| m.is_bank() && m.meta().sequence == 2),
+            "{out}"
+        );
+        // A plain table gives no mode: every reading is a fault for a known-mode bank.
+        let rows = table(&vec![[1.0, 0.0]; n + 1]);
+        let mut src = Table::<2>::new(&rows).unwrap();
+        let summary = node.run_with_fallback(&slots, &mut src, &mut out);
+        assert_eq!(
+            summary,
+            Summary {
+                scored: 1,
+                faults: n as u32
+            },
+            "{out}"
+        );
+        assert!(
+            out.contains(&format!(
+                "cause=unknown-mode:-\nfallback from=B at={}: ",
+                n - 1
+            )),
+            "{out}"
+        );
+        assert!(
+            out.contains(&format!(
+                "\nr {n} d2=3f800000 v=below alarm=0 fault=0 event=-\n"
+            )),
+            "{out}"
+        );
+    }
+
     #[test]
     fn fixed_point_and_f32_slots_follow_the_same_slot_rules() {
         let a = blob_bytes(1, 1);
@@ -764,7 +1279,7 @@ mod tests {
             }
             let slots = slots_ab(&a, &b);
             let mut out = String::new();
-            let node = Node::<_, _, 2, 3>::boot(
+            let node = Node::<_, _, 2, 3, 4>::boot(
                 &slots,
                 Line::new(
                     Mock::new(&[Transaction::set(State::Low)]),

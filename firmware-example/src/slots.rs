@@ -34,6 +34,9 @@
 use core::cmp::Ordering;
 use core::fmt;
 
+use ellipsoid_core::bank::{BankError, FlashBank};
+use ellipsoid_core::track::Tracker;
+use ellipsoid_core::window::WindowError;
 use ellipsoid_core::{
     blob, DecodeError, Explained, FixedModel, FlashModel, ModelMeta, ReadingFault, Scored,
 };
@@ -177,38 +180,57 @@ impl fmt::Display for SlotError {
 
 impl core::error::Error for SlotError {}
 
-/// A checked model from a slot, of either arithmetic (flag bit 1 of the blob header).
+/// A checked model from a slot: a single model of either arithmetic (flag bit 1 of the blob
+/// header), or a model bank (format version 2).
 ///
 /// * [`SlotModel::Float`]: an `f32` model, a checked view of the blob in place in flash.
 /// * [`SlotModel::Fixed`]: a fixed-point model (`ellipsoid_core::fixed`), which has no in-flash
 ///   form: its parameters are copied into RAM once, at boot (`size_of::<FixedModel<N, T>>()`,
 ///   88 bytes at N = 5, 144 at N = 8). `T` is `tri(N)`, its coefficient count.
+/// * [`SlotModel::Bank`]: a bank of modes scoring `M = N` values (the window's mean), a checked
+///   view in flash (`ellipsoid_core::bank::FlashBank`); the node scores it through an
+///   `ellipsoid_core::track::Tracker`, which holds the window, alarm and drift state.
+/// * [`SlotModel::BankDiff`]: a bank that scores the first differences too, `M = 2 N = D`. A
+///   build whose `D` is not `2 N` cannot hold one, and refuses such a blob like any invalid slot.
 ///
-/// Both score a reading in engineering units: the fixed model converts it with
+/// The single models score a reading in engineering units: the fixed model converts it with
 /// `FixedModel::reading`, the same function the host's `replay` uses, then scores it with integer
 /// arithmetic only, so that the device's d² is the host's, bit for bit.
 #[derive(Clone, Copy, Debug, PartialEq)]
-pub enum SlotModel<'a, const N: usize, const T: usize> {
+pub enum SlotModel<'a, const N: usize, const T: usize, const D: usize> {
     /// An `f32` model, scored in place in flash.
     Float(FlashModel<'a, N>),
     /// A fixed-point model, copied into RAM.
     Fixed(FixedModel<N, T>),
+    /// A model bank without differences (`M = N`), in place in flash.
+    Bank(FlashBank<'a, N, N>),
+    /// A model bank with differences (`M = 2 N = D`), in place in flash.
+    BankDiff(FlashBank<'a, N, D>),
 }
 
-impl<const N: usize, const T: usize> SlotModel<'_, N, T> {
+impl<const N: usize, const T: usize, const D: usize> SlotModel<'_, N, T, D> {
     /// Identifier, training time, sequence.
     pub fn meta(&self) -> ModelMeta {
         match self {
             SlotModel::Float(m) => m.meta(),
             SlotModel::Fixed(m) => m.meta(),
+            SlotModel::Bank(b) => b.meta(),
+            SlotModel::BankDiff(b) => b.meta(),
         }
     }
 
-    /// Alarm and clear thresholds.
+    /// Alarm and clear thresholds (of mode 0, for a bank: each mode has its own, and the bank's
+    /// tracker judges every reading against its chosen mode's).
     pub fn thresholds(&self) -> Thresholds {
+        let none = Thresholds {
+            alarm: f32::INFINITY,
+            clear: f32::INFINITY,
+        };
         match self {
             SlotModel::Float(m) => m.thresholds(),
             SlotModel::Fixed(m) => m.thresholds(),
+            SlotModel::Bank(b) => b.thresholds(0).unwrap_or(none),
+            SlotModel::BankDiff(b) => b.thresholds(0).unwrap_or(none),
         }
     }
 
@@ -217,6 +239,8 @@ impl<const N: usize, const T: usize> SlotModel<'_, N, T> {
         match self {
             SlotModel::Float(m) => m.policy(),
             SlotModel::Fixed(m) => m.policy(),
+            SlotModel::Bank(b) => b.policy(),
+            SlotModel::BankDiff(b) => b.policy(),
         }
     }
 
@@ -225,35 +249,56 @@ impl<const N: usize, const T: usize> SlotModel<'_, N, T> {
         matches!(self, SlotModel::Fixed(_))
     }
 
-    /// Score a reading in engineering units.
+    /// Whether the model is a bank (format version 2), scored through a tracker.
+    pub const fn is_bank(&self) -> bool {
+        matches!(self, SlotModel::Bank(_) | SlotModel::BankDiff(_))
+    }
+
+    /// Score a reading in engineering units. A bank has no score of one reading on its own (its
+    /// window, mode and drift are state, kept by its tracker): for a bank this is the fault
+    /// `WindowFilling` of its whole window, never a score.
     #[inline(always)]
     pub fn score(&self, x: &[f32; N]) -> Result<Scored, ReadingFault> {
         match self {
             SlotModel::Float(m) => m.score(x),
             SlotModel::Fixed(m) => m.score_f32(x),
+            SlotModel::Bank(b) => Err(ReadingFault::WindowFilling {
+                missing: b.window().need(),
+            }),
+            SlotModel::BankDiff(b) => Err(ReadingFault::WindowFilling {
+                missing: b.window().need(),
+            }),
         }
     }
 
-    /// Score a reading and split d² per feature.
+    /// Score a reading and split d² per feature (a fault for a bank, as [`Self::score`]).
     #[inline(always)]
     pub fn explain(&self, x: &[f32; N]) -> Result<Explained<N>, ReadingFault> {
         match self {
             SlotModel::Float(m) => m.explain(x),
             SlotModel::Fixed(m) => m.explain(&m.reading(x)?),
+            SlotModel::Bank(b) => Err(ReadingFault::WindowFilling {
+                missing: b.window().need(),
+            }),
+            SlotModel::BankDiff(b) => Err(ReadingFault::WindowFilling {
+                missing: b.window().need(),
+            }),
         }
     }
 }
 
 /// Validate the blob at the start of `bytes`. An `f32` blob is kept as a view in place: the model
 /// stays in flash, and only its centre and a few scalars are kept in RAM (see
-/// `ellipsoid_core::flash`). A fixed-point blob (flag bit 1) is decoded into a RAM copy.
+/// `ellipsoid_core::flash`). A fixed-point blob (flag bit 1) is decoded into a RAM copy. A bank
+/// (format version 2) is kept as a view in place too, `M = N` or, with differences, `M = D`;
+/// its tracker is built once here to check it can be (the node builds its own).
 ///
 /// Never panics: every access is checked. Kept out of line so that the image check for panic
 /// machinery (see the README) can find this path by its symbol.
 #[inline(never)]
-pub fn load<const N: usize, const T: usize>(
+pub fn load<const N: usize, const T: usize, const D: usize>(
     bytes: &[u8],
-) -> Result<SlotModel<'_, N, T>, SlotError> {
+) -> Result<SlotModel<'_, N, T, D>, SlotError> {
     let head = bytes.get(..blob::HEADER_LEN).unwrap_or(bytes);
     if head.iter().all(|b| *b == 0xFF) || head.iter().all(|b| *b == 0x00) {
         return Err(SlotError::Empty);
@@ -263,6 +308,22 @@ pub fn load<const N: usize, const T: usize>(
         stated: header.len,
         capacity: bytes.len(),
     })?;
+    if header.version == blob::VERSION_BANK {
+        // The core refuses a version 2 blob with the fixed-point flag (no bank in fixed point).
+        return match FlashBank::<N, N>::from_blob(blob) {
+            Ok(b) => Tracker::new(b)
+                .map(|_| SlotModel::Bank(b))
+                .map_err(SlotError::Blob),
+            // The blob scores differences: `M = 2 N`, which only the `D` variant can hold.
+            Err(DecodeError::Bank(BankError::Window(WindowError::Shape {
+                differences: true,
+                ..
+            }))) => FlashBank::<N, D>::from_blob(blob)
+                .and_then(|b| Tracker::new(b).map(|_| SlotModel::BankDiff(b)))
+                .map_err(SlotError::Blob),
+            Err(e) => Err(SlotError::Blob(e)),
+        };
+    }
     if header.flags & blob::FLAG_FIXED != 0 {
         FixedModel::from_blob(blob)
             .map(SlotModel::Fixed)
@@ -315,11 +376,11 @@ pub enum TieKind {
 
 /// The model chosen at boot.
 #[derive(Clone, Copy, Debug, PartialEq)]
-pub struct Chosen<'a, const N: usize, const T: usize> {
+pub struct Chosen<'a, const N: usize, const T: usize, const D: usize> {
     /// Index into the slots given to [`choose`].
     pub slot: usize,
     /// The checked model (in place in its slot for an `f32` model).
-    pub model: SlotModel<'a, N, T>,
+    pub model: SlotModel<'a, N, T, D>,
     /// The blob's CRC-32.
     pub crc: u32,
     /// The chosen slot's confirmation word.
@@ -362,18 +423,18 @@ fn beats(a: &Candidate, b: &Candidate) -> (bool, Option<TieKind>) {
 /// model (see the module documentation for the rule), or `None` when no slot validates. Slots
 /// `skip` (an index) is passed over, as if unusable, without a report: the slot a node has fallen
 /// back from.
-pub fn choose<'a, const N: usize, const T: usize>(
+pub fn choose<'a, const N: usize, const T: usize, const D: usize>(
     slots: &[Slot<'a>],
     skip: Option<usize>,
     mut report: impl FnMut(&Slot<'a>, &SlotReport),
-) -> Option<Chosen<'a, N, T>> {
-    let mut best: Option<(Candidate, SlotModel<'a, N, T>)> = None;
+) -> Option<Chosen<'a, N, T, D>> {
+    let mut best: Option<(Candidate, SlotModel<'a, N, T, D>)> = None;
     let mut second: Option<Candidate> = None;
     for (i, slot) in slots.iter().enumerate() {
         if skip == Some(i) {
             continue;
         }
-        let model = match load::<N, T>(slot.bytes) {
+        let model = match load::<N, T, D>(slot.bytes) {
             Ok(m) => m,
             Err(e) => {
                 report(slot, &SlotReport::Unusable(e));
@@ -508,7 +569,7 @@ mod tests {
 
     fn chosen_seq(slots: &[Slot<'_>]) -> (Option<(usize, u32)>, Vec<String>) {
         let mut lines = Vec::new();
-        let c = choose::<2, 3>(slots, None, |s: &Slot<'_>, r: &SlotReport| {
+        let c = choose::<2, 3, 4>(slots, None, |s: &Slot<'_>, r: &SlotReport| {
             lines.push(format!("{} {:?}", s.name, r))
         });
         (c.map(|c| (c.slot, c.model.meta().sequence)), lines)
@@ -619,12 +680,12 @@ mod tests {
         assert_eq!(mark_offset(60), 60);
         // The mark is outside the blob: a confirmed slot still validates, with the same CRC.
         let (b, _) = blob(4);
-        let c = choose::<2, 3>(&slots_ab(&ac, &b), None, |_, _| {}).unwrap();
+        let c = choose::<2, 3, 4>(&slots_ab(&ac, &b), None, |_, _| {}).unwrap();
         assert_eq!(
             (c.slot, c.mark, c.fallback),
             (1, Mark::Unconfirmed, Some(0))
         );
-        let c = choose::<2, 3>(&slots_ab(&ac, &b), Some(1), |_, _| {}).unwrap();
+        let c = choose::<2, 3, 4>(&slots_ab(&ac, &b), Some(1), |_, _| {}).unwrap();
         assert_eq!((c.slot, c.mark, c.fallback), (0, Mark::Confirmed, None));
     }
 
@@ -675,19 +736,19 @@ mod tests {
     fn empty_erased_and_wrong_dimension_slots() {
         let erased = [0xFFu8; 64];
         let zero = [0u8; 64];
-        assert_eq!(load::<2, 3>(&erased), Err(SlotError::Empty));
-        assert_eq!(load::<2, 3>(&zero), Err(SlotError::Empty));
-        assert_eq!(load::<2, 3>(&zero[..3]), Err(SlotError::Empty));
+        assert_eq!(load::<2, 3, 4>(&erased), Err(SlotError::Empty));
+        assert_eq!(load::<2, 3, 4>(&zero), Err(SlotError::Empty));
+        assert_eq!(load::<2, 3, 4>(&zero[..3]), Err(SlotError::Empty));
         let (a, len) = blob(1);
         assert!(matches!(
-            load::<3, 6>(&a),
+            load::<3, 6, 6>(&a),
             Err(SlotError::Blob(DecodeError::Dimension {
                 found: 2,
                 expected: 3
             }))
         ));
         assert_eq!(
-            load::<2, 3>(&a[..len - 1]),
+            load::<2, 3, 4>(&a[..len - 1]),
             Err(SlotError::TooLong {
                 stated: len,
                 capacity: len - 1
