@@ -9,6 +9,16 @@
 //! The models have no log-transformed features, so a score costs the floor
 //! `F(N) = N(N+1)/2 + 2N` floating-point operations (the factor's multiply-adds, the `N`
 //! subtractions of preprocessing and the `N` squares) plus its control.
+//!
+//! On the Cortex-M4F board it also measures model banks (format version 2) through the core's
+//! `Tracker`, for K = 1, 2, 4 modes at N = 8 and 16 (`cost_bank` lines): without a window, with
+//! a window of 4 readings and drift, and with the window, drift and the first differences
+//! (`M = 2 N` scored values). Each line gives the instructions of `Tracker::step` (window, the
+//! nearest-mode rule over all K modes, alarm machine, drift), those of the node's `node::track`
+//! (the step, with a copy of the tracker kept while the alarm is quiet, for `top` on a raise),
+//! those of `Tracker::step_explained` (the step and the chosen mode's contributions, in `f64`),
+//! `size_of` the tracker, and the blob's length. `cost_v1` lines compare a single model's node path
+//! (`node::score` and `node::alarm_update`) with the same blob run through a `Tracker`.
 #![cfg_attr(target_os = "none", no_std, no_main)]
 
 /// The image itself: only for the board's bare-metal target.
@@ -18,6 +28,12 @@ mod image {
     use core::hint::black_box;
 
     use cortex_m_rt::entry;
+    #[cfg(feature = "mps2-an386")]
+    use ellipsoid_core::{
+        bank::{BankParams, DriftSpec, ModeParams, ModeSelect},
+        track::Tracker,
+        window::WindowSpec,
+    };
     use ellipsoid_core::{
         blob, fixed, tri, AlarmPolicy, CompactModel, FixedModel, FlashModel, Model, ModelMeta,
         ModelParams, Preprocess, ReadingFault, Scored, Thresholds,
@@ -114,7 +130,8 @@ mod image {
         (Ticks::elapsed(t0, t1), per_score, stack)
     }
 
-    fn measure<const N: usize, const T: usize>(
+    /// `D` is `2 N`, as the node image builds its slot model (a bank with differences).
+    fn measure<const N: usize, const T: usize, const D: usize>(
         ticks: &Ticks,
         per_tick: f32,
         out: &mut Console,
@@ -155,7 +172,7 @@ mod image {
         let floor = N * (N + 1) / 2 + 2 * N;
         let (c_ticks, c_per, c_stack) = time(ticks, per_tick, &compact, &xs, score_compact);
         // The node's own path: `node::score` on the slot's model, an `f32` view in flash here.
-        let slot_flash = SlotModel::<N, T>::Float(flash);
+        let slot_flash = SlotModel::<N, T, D>::Float(flash);
         let (f_ticks, f_per, f_stack) = time(ticks, per_tick, &slot_flash, &xs, node::score);
         let (m_ticks, m_per, m_stack) = time(ticks, per_tick, &model, &xs, score_model);
         // The fixed-point model of the same parameters, on the same readings as integers.
@@ -179,14 +196,14 @@ mod image {
                 let (n_ticks, n_per, n_stack) = time(
                     ticks,
                     per_tick,
-                    &SlotModel::<N, T>::Fixed(fm),
+                    &SlotModel::<N, T, D>::Fixed(fm),
                     &xs,
                     node::score,
                 );
                 let _ = writeln!(
                     out,
                     "cost_node_fixed n={N} reps={REPS} ticks={n_ticks} instr_per_score={n_per:.1} stack_bytes={n_stack} ram_bytes={}",
-                    core::mem::size_of::<SlotModel<'_, N, T>>(),
+                    core::mem::size_of::<SlotModel<'_, N, T, D>>(),
                 );
                 let _ = writeln!(
                     out,
@@ -251,6 +268,221 @@ mod image {
         x[0]
     }
 
+    /// A bank's step without contributions, out of line as `node::track` is.
+    #[cfg(feature = "mps2-an386")]
+    #[inline(never)]
+    fn track_step<const N: usize, const M: usize>(
+        t: &mut Tracker<'_, N, M>,
+        x: &[f32; N],
+    ) -> Option<f32> {
+        t.step(x, None).score.ok().map(|s| s.d2)
+    }
+
+    /// A single model's whole step on the node: score, then the alarm machine.
+    #[cfg(feature = "mps2-an386")]
+    #[inline(never)]
+    fn single_step<const N: usize, const T: usize>(
+        m: &SlotModel<'_, N, T, N>,
+        machine: &mut ellipsoid_core::AlarmMachine,
+        x: &[f32; N],
+    ) -> Option<f32> {
+        let s = node::score(m, x);
+        node::alarm_update(machine, &s);
+        s.ok().map(|s| s.d2)
+    }
+
+    /// Instructions per call of `f` on four rotating readings, over `reps` calls.
+    #[cfg(feature = "mps2-an386")]
+    fn per_call<const N: usize>(
+        ticks: &Ticks,
+        per_tick: f32,
+        reps: u32,
+        xs: &[[f32; N]; 4],
+        mut f: impl FnMut(&[f32; N]) -> Option<f32>,
+    ) -> f32 {
+        let mut sum = 0.0f32;
+        let t0 = ticks.now();
+        for k in 0..reps {
+            if let Some(d2) = f(black_box(&xs[(k & 3) as usize])) {
+                sum += d2;
+            }
+        }
+        let t1 = ticks.now();
+        black_box(sum);
+        Ticks::elapsed(t0, t1) as f32 * per_tick / reps as f32
+    }
+
+    /// Blob bytes of the largest bank measured: K = 4, N = 16, M = 32, with drift.
+    #[cfg(feature = "mps2-an386")]
+    const BANK_BUF: usize = blob::max_bank_len(16, 32, 4, true);
+
+    /// The cost of one bank shape: `k` modes of random models of `M` scored values, the nearest
+    /// rule, the window `w` and, if `drift`, drift at rate 0.01 with a bound of 3 on every value.
+    #[cfg(feature = "mps2-an386")]
+    fn measure_bank<const N: usize, const M: usize>(
+        ticks: &Ticks,
+        per_tick: f32,
+        out: &mut Console,
+        k: usize,
+        w: u8,
+        drift: bool,
+    ) -> bool {
+        let mut rng = Lcg(0x9E37_79B9 ^ (N as u32) ^ ((k as u32) << 8) ^ ((M as u32) << 16));
+        let mut modes = [ModeParams::<M> {
+            offset: [0.0; M],
+            scale: [1.0; M],
+            mean: [0.0; M],
+            w: [[0.0; M]; M],
+            thresholds: Thresholds {
+                alarm: 1.0,
+                clear: 0.5,
+            },
+        }; 4];
+        for m in modes.iter_mut().take(k) {
+            let p = params::<M>(&mut rng);
+            *m = ModeParams {
+                offset: p.preprocess.offset,
+                scale: p.preprocess.scale,
+                mean: p.mean,
+                w: p.w,
+                thresholds: p.thresholds,
+            };
+            // A difference is centred at 0: a machine running normally changes little.
+            for i in N..M {
+                m.offset[i] = 0.0;
+                m.mean[i] = 0.0;
+            }
+        }
+        let spec = WindowSpec {
+            length: w,
+            differences: M == 2 * N,
+        };
+        let bank = BankParams::<N, M> {
+            meta: ModelMeta::default(),
+            log_mask: 0,
+            select: ModeSelect::Nearest,
+            modes: &modes[..k],
+            window: spec,
+            drift: drift.then_some(DriftSpec {
+                rate: 0.01,
+                bound: [3.0; M],
+            }),
+            policy: AlarmPolicy::default(),
+            names_digest: 0,
+        };
+        let mut buf = [0u8; BANK_BUF];
+        let Ok(len) = blob::encode_bank(&bank, &mut buf) else {
+            let _ = writeln!(out, "cost_bank n={N} m={M} k={k} bank refused");
+            return false;
+        };
+        let Ok(mut tracker) = Tracker::<N, M>::from_blob(&buf[..len]) else {
+            let _ = writeln!(out, "cost_bank n={N} m={M} k={k} blob refused");
+            return false;
+        };
+        // Readings close to mode 0's centre (raw units: the window's mean of the first N
+        // values), and to each other (their differences are small), so that the alarm stays
+        // quiet and drift follows on every timed step, as on a machine running normally.
+        let mut xs = [[0.0f32; N]; 4];
+        if let Some(c) = tracker.bank().center(0) {
+            for x in xs.iter_mut() {
+                for (xi, ci) in x.iter_mut().zip(c) {
+                    *xi = ci + 0.02 * rng.next();
+                }
+            }
+        }
+        // Fill the window first, so that every timed step scores.
+        for x in &xs {
+            track_step(&mut tracker, x);
+        }
+        let step = per_call(ticks, per_tick, REPS, &xs, |x| {
+            track_step(black_box(&mut tracker), x)
+        });
+        let scored = xs.iter().all(|x| track_step(&mut tracker, x).is_some());
+        let node_track = per_call(ticks, per_tick, REPS, &xs, |x| {
+            node::track(black_box(&mut tracker), x, None)
+                .0
+                .score
+                .ok()
+                .map(|s| s.d2)
+        });
+        let explained = per_call(ticks, per_tick, REPS / 10, &xs, |x| {
+            black_box(&mut tracker)
+                .step_explained(x, None)
+                .score
+                .ok()
+                .map(|s| s.d2)
+        });
+        let quiet = tracker.alarm().status() == ellipsoid_core::Status::Quiet;
+        let mads = k * M * (M + 1) / 2;
+        let _ = writeln!(
+            out,
+            "cost_bank n={N} m={M} k={k} w={w} differences={} drift={} reps={REPS} instr_per_score={step:.1} \
+             instr_node_track={node_track:.1} instr_explained={explained:.1} multiply_adds={mads} instr_per_mad={:.2} ram_bytes={} blob_bytes={len} alarm_quiet={}",
+            u8::from(M == 2 * N),
+            u8::from(drift),
+            step / mads as f32,
+            core::mem::size_of::<Tracker<'_, N, M>>(),
+            u8::from(quiet),
+        );
+        if !scored {
+            let _ = writeln!(
+                out,
+                "cost_bank n={N} m={M} k={k} a timed step did not score"
+            );
+        }
+        scored
+    }
+
+    /// A single model (format version 1): the node's path, and the same blob through a tracker.
+    #[cfg(feature = "mps2-an386")]
+    fn measure_v1<const N: usize, const T: usize>(
+        ticks: &Ticks,
+        per_tick: f32,
+        out: &mut Console,
+    ) -> bool {
+        let mut rng = Lcg(0x2545_F491 ^ N as u32);
+        let p = params::<N>(&mut rng);
+        let mut buf = [0u8; blob::max_len(16)];
+        let Ok(len) = blob::encode(&p, &mut buf) else {
+            return false;
+        };
+        let (Ok(flash), Ok(mut tracker)) = (
+            FlashModel::<N>::from_blob(&buf[..len]),
+            Tracker::<N, N>::from_blob(&buf[..len]),
+        ) else {
+            let _ = writeln!(out, "cost_v1 n={N} blob refused");
+            return false;
+        };
+        let mut xs = [[0.0f32; N]; 4];
+        for x in xs.iter_mut() {
+            for (xi, c) in x.iter_mut().zip(flash.center()) {
+                *xi = c + rng.next();
+            }
+        }
+        let slot = SlotModel::<N, T, N>::Float(flash);
+        let mut machine = ellipsoid_core::AlarmMachine::new(flash.thresholds(), flash.policy());
+        let node_path = per_call(ticks, per_tick, REPS, &xs, |x| {
+            single_step(black_box(&slot), black_box(&mut machine), x)
+        });
+        let tracked = per_call(ticks, per_tick, REPS, &xs, |x| {
+            track_step(black_box(&mut tracker), x)
+        });
+        // The same bits both ways, on a fresh tracker.
+        let same = Tracker::<N, N>::from_blob(&buf[..len]).is_ok_and(|mut t| {
+            xs.iter().all(|x| {
+                let a = t.step(x, None).score.map(|s| s.d2.to_bits()).ok();
+                a == flash.score(x).map(|s| s.d2.to_bits()).ok()
+            })
+        });
+        let _ = writeln!(
+            out,
+            "cost_v1 n={N} reps={REPS} node_score_and_alarm={node_path:.1} tracker_step={tracked:.1} ratio={:.3} same_bits={}",
+            tracked / node_path,
+            u8::from(same),
+        );
+        same
+    }
+
     #[entry]
     fn main() -> ! {
         // Only the console and the tick counter: this image drives no line.
@@ -265,9 +497,26 @@ mod image {
             "calibrate instructions={} ticks={cal} instr_per_tick={per_tick:.3}",
             2 * SPIN
         );
-        let ok = measure::<4, { tri(4) }>(&ticks, per_tick, &mut out)
-            & measure::<8, { tri(8) }>(&ticks, per_tick, &mut out)
-            & measure::<16, { tri(16) }>(&ticks, per_tick, &mut out);
+        let ok = measure::<4, { tri(4) }, 8>(&ticks, per_tick, &mut out)
+            & measure::<8, { tri(8) }, 16>(&ticks, per_tick, &mut out)
+            & measure::<16, { tri(16) }, 32>(&ticks, per_tick, &mut out);
+        // Banks on the Cortex-M4F only: the micro:bit's 16 KiB of RAM does not hold the largest
+        // bank's blob buffer beside the rest.
+        #[cfg(feature = "mps2-an386")]
+        let ok = ok & {
+            let mut all = measure_v1::<4, { tri(4) }>(&ticks, per_tick, &mut out)
+                & measure_v1::<8, { tri(8) }>(&ticks, per_tick, &mut out)
+                & measure_v1::<16, { tri(16) }>(&ticks, per_tick, &mut out);
+            for k in [1, 2, 4] {
+                all &= measure_bank::<8, 8>(&ticks, per_tick, &mut out, k, 1, false);
+                all &= measure_bank::<8, 8>(&ticks, per_tick, &mut out, k, 4, true);
+                all &= measure_bank::<8, 16>(&ticks, per_tick, &mut out, k, 4, true);
+                all &= measure_bank::<16, 16>(&ticks, per_tick, &mut out, k, 1, false);
+                all &= measure_bank::<16, 16>(&ticks, per_tick, &mut out, k, 4, true);
+                all &= measure_bank::<16, 32>(&ticks, per_tick, &mut out, k, 4, true);
+            }
+            all
+        };
         selected::exit(ok)
     }
 }
