@@ -5,7 +5,8 @@
 #  2. build the firmware with the firmware profile (Cortex-M4F on mps2-an386, Cortex-M0 on microbit);
 #  3. run it in qemu-system-arm (mps2-an386) with the blob in slot A and the demo's readings loaded;
 #  4. check that the device's d² is bit-identical to `ellipsoid replay`, and its alarm timeline,
-#     pin changes and final LED levels identical;
+#     pin changes and final LED levels identical; the same for a model bank (format version 2:
+#     modes, a window and drift), whose mode and drift flag must be identical too;
 #  5. run it with slot A corrupted and a valid model in B (B must be used), with a torn A and a newer
 #     B, and with both slots corrupt (fault line on, nothing scored);
 #  6. look for panic machinery on the decode and score paths of the firmware image;
@@ -70,6 +71,23 @@ grep "^Fixed point (--no-fpu)" "$W/fit-fixed.txt"
 $TOOL damage --input "$BLOB_FX" --mode flip --out "$W/fixed-flipped.blob"
 replay "$BLOB_FX" "$READINGS" "$W/replay-fixed.csv"
 # --- end of fixed point ---
+# --- model bank (format version 2): two modes, a window of 4 readings, drift ---
+# Until the trainer writes banks, the bank is built by node-tool from two single models the
+# trainer fitted, each on one half of the demo's baseline (one mode each), with core's
+# encode_bank. Drift's bound is 0.5 baseline standard deviations, so that the run reaches it.
+BASE="$W/demo/baseline.csv"
+rows=$(($(wc -l <"$BASE") - 1))
+head -n $((rows / 2 + 1)) "$BASE" >"$W/baseline-1.csv"
+{ head -n 1 "$BASE"; tail -n +$((rows / 2 + 2)) "$BASE"; } >"$W/baseline-2.csv"
+$ELLIPSOID fit "$W/baseline-1.csv" --out "$W/mode-0.blob" --sequence 4 --trained-at 1772452800 >/dev/null
+$ELLIPSOID fit "$W/baseline-2.csv" --out "$W/mode-1.blob" --sequence 4 --trained-at 1772452800 >/dev/null
+BLOB_BANK="$W/model-bank.blob"
+$TOOL bank-blob --mode-blob "$W/mode-0.blob" --mode-blob "$W/mode-1.blob" --select nearest \
+  --window 4 --drift-half-life 600 --drift-bound 0.5 --out "$BLOB_BANK"
+FEATURES=$(head -n 1 "$READINGS" | tr ',' '\n' | grep -vx 'timestamp\|label' | paste -sd, -)
+# The host's side: the core's Tracker over the very readings the device is given.
+$TOOL track --model "$BLOB_BANK" --table "$W/readings.bin" --features "$FEATURES" --out "$W/replay-bank.csv"
+# --- end of the model bank ---
 
 say "2. the firmware, release"
 FW="cargo build -q --profile firmware -p ellipsoid-firmware-example"
@@ -154,6 +172,31 @@ $TOOL compare --device "$W/fixed-flipped.log" --replay "$W/replay-b.csv" --readi
   --slot B --unusable A | sed 's/^/fixed point in slot A with one bit flipped, f32 B valid: /' | tee -a "$W/compared.txt"
 # --- end of fixed point on the node (AN386) ---
 
+# --- model bank on the node (AN386): modes, window and drift, bit-identical to the host ---
+say "4b. a model bank in slot A: mode, d², alarm, fault and drift against the host"
+# shellcheck disable=SC2046
+run bank-a "$ELF" $(load "$BLOB_BANK" "$SLOT_A") $(load "$W/readings.bin" "$TABLE")
+grep -q "^model slot=A .* modes=2 select=nearest window=4 differences=0 drift=1$" "$W/bank-a.log" \
+  || fail "the node did not take slot A as the bank"
+grep -q " event=drift " "$W/bank-a.log" || fail "the bank's run reached no drift bound"
+$TOOL compare --device "$W/bank-a.log" --replay "$W/replay-bank.csv" --readings "$READINGS" \
+  --slot A | sed 's/^/model bank (2 nearest modes, window 4, drift) in slot A, B empty: /' | tee -a "$W/compared.txt"
+# The comparison can fail: one reading's mode changed, and the drift flag cleared on one reading.
+awk '!done && $1 == "r" && / mode=0 / { sub(/ mode=0 /, " mode=1 "); done = 1 } { print }' \
+  "$W/bank-a.log" >"$W/bank-mode-tampered.log"
+awk '!done && $1 == "r" && / drift=1/ { sub(/ drift=1/, " drift=0"); done = 1 } { print }' \
+  "$W/bank-a.log" >"$W/bank-drift-tampered.log"
+for t in mode drift; do
+  cmp -s "$W/bank-a.log" "$W/bank-$t-tampered.log" && fail "the $t-tampered bank log is unchanged"
+  if $TOOL compare --device "$W/bank-$t-tampered.log" --replay "$W/replay-bank.csv" --readings "$READINGS" \
+      --slot A >"$W/bank-$t-tampered.out" 2>&1; then
+    fail "compare accepted a bank log with a changed $t"
+  fi
+  grep -q "mode/drift device" "$W/bank-$t-tampered.out" || fail "compare refused the $t-tampered log for another reason"
+  echo "refused, as it must be: $(grep -m1 MISMATCH "$W/bank-$t-tampered.out")"
+done
+# --- end of the model bank on the node (AN386) ---
+
 say "5. slot A corrupt, B valid: B must be used"
 # shellcheck disable=SC2046
 run a-flipped "$ELF" $(load "$W/a-flipped.blob" "$SLOT_A") $(load "$BLOB_B" "$SLOT_B") \
@@ -205,7 +248,8 @@ echo "refused, as it must be: $(grep -m1 MISMATCH "$W/pins-tampered.out")"
 # --- end of pinned scores ---------------------------------------------------------------------
 
 say "6. panic machinery on the decode and score paths"
-$TOOL reach --elf "$ELF" --roots slots::load,node::score,node::explain,node::alarm_update | tee "$W/reach.txt"
+$TOOL reach --elf "$ELF" --roots slots::load,node::score,node::explain,node::alarm_update,node::track \
+  | tee "$W/reach.txt"
 
 # --- flash-resident model: the stack guard, flash per function group ----------------------------
 # The stack sits at the bottom of RAM above an MPU guard (boards/mps2_an386/memory.x): the
@@ -298,6 +342,13 @@ grep -q "^slot A unusable: CRC mismatch" "$W/m0-fixed-flipped.log" || fail "M0: 
 $TOOL compare --device "$W/m0-fixed-flipped.log" --replay "$W/replay-b.csv" --readings "$READINGS" \
   --slot B --unusable A | sed 's/^/M0, fixed point in slot A with one bit flipped, f32 B valid: /' | tee -a "$W/compared-m0.txt"
 # --- end of fixed point on the node (M0) ---
+# --- model bank on the node (M0): the same bank, bit-identical to the host in software float ---
+# shellcheck disable=SC2046
+run_m0 m0-bank-a "$ELF_M0" "$W/readings.bin" $(load "$BLOB_BANK" "$M0_A")
+must_pass_m0 m0-bank-a
+$TOOL compare --device "$W/m0-bank-a.log" --replay "$W/replay-bank.csv" --readings "$READINGS" \
+  --slot A | sed 's/^/M0, model bank (2 nearest modes, window 4, drift) in slot A, B empty: /' | tee -a "$W/compared-m0.txt"
+# --- end of the model bank on the node (M0) ---
 # The same blob programmed as a flash programmer would: `ellipsoid export` writes Intel HEX at the
 # micro:bit's slot B, and the emulator's loader reads the HEX file (its addresses, not ours).
 $ELLIPSOID export "$BLOB_A" --format ihex --board microbit --slot B --out "$W/model-a-slot-b.hex"
@@ -401,7 +452,7 @@ grep -q "^r " "$W/m0-no-file.log" && fail "M0: readings were scored without a re
 echo "M0, reading file missing: reported, fault line on, nothing scored, run failed" | tee -a "$W/compared-m0.txt"
 
 say "M0. panic machinery on the decode and score paths of the M0 image"
-$TOOL reach --elf "$ELF_M0" --roots slots::load,node::score,node::explain | tee "$W/reach-m0.txt"
+$TOOL reach --elf "$ELF_M0" --roots slots::load,node::score,node::explain,node::track | tee "$W/reach-m0.txt"
 # The padding after `__aeabi_dmul` is skipped, not the function: a call planted at its last
 # instruction (just before the padding) must be found.
 if $TOOL reach --elf "$ELF_M0" --roots slots::load,node::score,node::explain \

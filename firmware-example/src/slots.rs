@@ -35,7 +35,6 @@ use core::cmp::Ordering;
 use core::fmt;
 
 use ellipsoid_core::bank::{BankError, FlashBank};
-use ellipsoid_core::track::Tracker;
 use ellipsoid_core::window::WindowError;
 use ellipsoid_core::{
     blob, DecodeError, Explained, FixedModel, FlashModel, ModelMeta, ReadingFault, Scored,
@@ -290,8 +289,8 @@ impl<const N: usize, const T: usize, const D: usize> SlotModel<'_, N, T, D> {
 /// Validate the blob at the start of `bytes`. An `f32` blob is kept as a view in place: the model
 /// stays in flash, and only its centre and a few scalars are kept in RAM (see
 /// `ellipsoid_core::flash`). A fixed-point blob (flag bit 1) is decoded into a RAM copy. A bank
-/// (format version 2) is kept as a view in place too, `M = N` or, with differences, `M = D`;
-/// its tracker is built once here to check it can be (the node builds its own).
+/// (format version 2) is kept as a view in place too, `M = N` or, with differences, `M = D`
+/// (the node builds its tracker on it).
 ///
 /// Never panics: every access is checked. Kept out of line so that the image check for panic
 /// machinery (see the README) can find this path by its symbol.
@@ -310,16 +309,16 @@ pub fn load<const N: usize, const T: usize, const D: usize>(
     })?;
     if header.version == blob::VERSION_BANK {
         // The core refuses a version 2 blob with the fixed-point flag (no bank in fixed point).
+        // `FlashBank::from_blob` checks every rule `Tracker::new` relies on (the window's shape,
+        // at least one mode), so the node's tracker can always be built from what passes here.
         return match FlashBank::<N, N>::from_blob(blob) {
-            Ok(b) => Tracker::new(b)
-                .map(|_| SlotModel::Bank(b))
-                .map_err(SlotError::Blob),
+            Ok(b) => Ok(SlotModel::Bank(b)),
             // The blob scores differences: `M = 2 N`, which only the `D` variant can hold.
             Err(DecodeError::Bank(BankError::Window(WindowError::Shape {
                 differences: true,
                 ..
             }))) => FlashBank::<N, D>::from_blob(blob)
-                .and_then(|b| Tracker::new(b).map(|_| SlotModel::BankDiff(b)))
+                .map(SlotModel::BankDiff)
                 .map_err(SlotError::Blob),
             Err(e) => Err(SlotError::Blob(e)),
         };

@@ -114,6 +114,46 @@ enum Cmd {
         #[arg(long)]
         unusable: Option<String>,
     },
+    /// Build a model bank (format version 2) of N = 5 raw features from single models (version 1
+    /// blobs of the same features, each the Gaussian of one mode), with a mode rule, a window
+    /// and drift: a fixture for the emulator run until the trainer writes banks itself.
+    BankBlob {
+        /// The single models, one per mode, in mode order (their card names the features).
+        #[arg(long = "mode-blob", required = true)]
+        mode_blobs: Vec<PathBuf>,
+        /// `nearest` or `known`.
+        #[arg(long, default_value = "nearest")]
+        select: String,
+        /// Readings averaged (1 to 16).
+        #[arg(long, default_value_t = 1)]
+        window: u8,
+        /// Drift on, with the centre's half-life in readings: rate 1 − 0.5^(1/h).
+        #[arg(long)]
+        drift_half_life: Option<f64>,
+        /// The drift bound per feature, in the feature's baseline standard deviations (the
+        /// first model's `1 / scale`).
+        #[arg(long, default_value_t = 3.0)]
+        drift_bound: f64,
+        /// The bank blob to write.
+        #[arg(long)]
+        out: PathBuf,
+    },
+    /// Run the core's `Tracker` on a reading table (as `table` writes it, modes included) and
+    /// write what the device must report, in the columns of `ellipsoid replay` for a bank.
+    Track {
+        /// The blob (version 1 or 2).
+        #[arg(long)]
+        model: PathBuf,
+        /// The reading table.
+        #[arg(long)]
+        table: PathBuf,
+        /// The raw feature names, in model order (for `top_feature`).
+        #[arg(long, value_delimiter = ',')]
+        features: Vec<String>,
+        /// The CSV to write.
+        #[arg(long)]
+        out: PathBuf,
+    },
     /// Check a run with no valid slot: fault on, alarm off, nothing scored.
     NoModel {
         /// The device's semihosting output.
@@ -243,6 +283,27 @@ fn main() -> Result<()> {
             unusable.as_deref(),
         ),
         Cmd::NoModel { device } => no_model(&device),
+        Cmd::BankBlob {
+            mode_blobs,
+            select,
+            window,
+            drift_half_life,
+            drift_bound,
+            out,
+        } => bank_blob(
+            &mode_blobs,
+            &select,
+            window,
+            drift_half_life,
+            drift_bound,
+            &out,
+        ),
+        Cmd::Track {
+            model,
+            table,
+            features,
+            out,
+        } => track(&model, &table, &features, &out),
         Cmd::SlotImage {
             input,
             sequence,
@@ -816,9 +877,17 @@ fn compare(
         if let Some(t) = &d.top {
             tops += 1;
             let i: usize = t.parse().with_context(|| format!("device top={t}"))?;
+            // A bank with differences: index N + j is feature j's first difference.
+            let diff = i
+                .checked_sub(names.len())
+                .and_then(|j| names.get(j))
+                .map(|f| format!("diff_{f}"));
             let name = names
                 .get(i)
+                .cloned()
+                .or(diff)
                 .ok_or_else(|| anyhow!("device top={t}: no such feature"))?;
+            let name = &name;
             let same =
                 r.top.as_deref() == Some(name.as_str()) || r.top.as_deref() == Some(t.as_str());
             if !same {
@@ -899,6 +968,194 @@ fn compare(
         rep.len()
     );
     Ok(())
+}
+
+fn bank_blob(
+    mode_blobs: &[PathBuf],
+    select: &str,
+    window: u8,
+    drift_half_life: Option<f64>,
+    drift_bound: f64,
+    out: &Path,
+) -> Result<()> {
+    use ellipsoid_core::bank::{BankParams, DriftSpec, ModeParams, ModeSelect};
+    use ellipsoid_core::{blob, window::WindowSpec};
+    let select = match select {
+        "nearest" => ModeSelect::Nearest,
+        "known" => ModeSelect::Known,
+        other => bail!("--select {other:?}: nearest or known"),
+    };
+    let mut singles = Vec::new();
+    for path in mode_blobs {
+        let bytes = fs::read(path).with_context(|| format!("reading {}", path.display()))?;
+        let p = blob::decode::<5>(&bytes)
+            .map_err(|e| anyhow!("{}: not a valid N = 5 blob: {e}", path.display()))?;
+        singles.push((path, bytes, p));
+    }
+    let (first_path, first_bytes, first) = &singles[0];
+    let card = ellipsoid_trainer::data::card::ModelCard::read_for(first_path, first_bytes)?;
+    for (path, _, p) in &singles[1..] {
+        ensure!(
+            p.preprocess.log_mask == first.preprocess.log_mask,
+            "{}: log-transforms other features than {}",
+            path.display(),
+            first_path.display()
+        );
+    }
+    let modes: Vec<ModeParams<5>> = singles
+        .iter()
+        .map(|(_, _, p)| ModeParams {
+            offset: p.preprocess.offset,
+            scale: p.preprocess.scale,
+            mean: p.mean,
+            w: p.w,
+            thresholds: p.thresholds,
+        })
+        .collect();
+    let drift = drift_half_life
+        .map(|h| -> Result<DriftSpec<5>> {
+            ensure!(h > 0.0, "--drift-half-life must be positive");
+            let rate = (1.0 - 0.5f64.powf(1.0 / h)) as f32;
+            let mut bound = [0.0f32; 5];
+            for (b, s) in bound.iter_mut().zip(first.preprocess.scale) {
+                *b = (drift_bound / f64::from(s)) as f32;
+            }
+            Ok(DriftSpec { rate, bound })
+        })
+        .transpose()?;
+    let bank = BankParams::<5, 5> {
+        meta: first.meta,
+        log_mask: first.preprocess.log_mask,
+        select,
+        modes: &modes,
+        window: WindowSpec {
+            length: window,
+            differences: false,
+        },
+        drift,
+        policy: first.policy,
+        names_digest: blob::names_digest(card.features.iter().map(String::as_str)),
+    };
+    let mut buf = vec![0u8; blob::max_bank_len(5, 5, modes.len(), drift.is_some())];
+    let len = blob::encode_bank(&bank, &mut buf)
+        .map_err(|e| anyhow!("the bank of {} modes cannot be encoded: {e:?}", modes.len()))?;
+    buf.truncate(len);
+    write_atomic(out, &buf)?;
+    println!(
+        "bank-blob: {} modes ({}), window {window}, drift {} -> {} ({len} bytes)",
+        modes.len(),
+        select.name(),
+        drift.map_or("off".to_string(), |d| format!(
+            "rate {} (half-life {} readings), bound {drift_bound} sd",
+            d.rate,
+            drift_half_life.unwrap_or(0.0)
+        )),
+        out.display()
+    );
+    Ok(())
+}
+
+/// The rows of a reading table file (`table`'s output): readings and modes.
+fn read_table<const N: usize>(path: &Path) -> Result<Vec<([f32; N], Option<u8>)>> {
+    use ellipsoid_firmware_example::source::{ReadingSource, Table};
+    let bytes = fs::read(path).with_context(|| format!("reading {}", path.display()))?;
+    let mut t = Table::<N>::new(&bytes).map_err(|e| anyhow!("{}: {e}", path.display()))?;
+    let mut rows = Vec::new();
+    while let Some(r) = t.next_with_mode() {
+        rows.push(r);
+    }
+    Ok(rows)
+}
+
+fn track(model: &Path, table: &Path, features: &[String], out: &Path) -> Result<()> {
+    let bytes = fs::read(model).with_context(|| format!("reading {}", model.display()))?;
+    let h = ellipsoid_core::blob::Header::parse(&bytes)
+        .map_err(|e| anyhow!("{}: not a blob: {e}", model.display()))?;
+    ensure!(
+        h.n == 5 && features.len() == 5,
+        "{}: track runs N = 5 models with 5 feature names (N = {}, {} names)",
+        model.display(),
+        h.n,
+        features.len()
+    );
+    let rows = read_table::<5>(table)?;
+    let text = match ellipsoid_core::track::Tracker::<5, 5>::from_blob(&bytes) {
+        Ok(t) => track_rows(t, &rows, features)?,
+        Err(_) => {
+            let t = ellipsoid_core::track::Tracker::<5, 10>::from_blob(&bytes)
+                .map_err(|e| anyhow!("{}: {e}", model.display()))?;
+            track_rows(t, &rows, features)?
+        }
+    };
+    write_atomic(out, text.as_bytes())?;
+    println!(
+        "track: {} readings through the core's Tracker -> {}",
+        rows.len(),
+        out.display()
+    );
+    Ok(())
+}
+
+/// The replay CSV of a tracker over `rows` (`top_feature` on a raise, by `Explained::top`).
+fn track_rows<const N: usize, const M: usize>(
+    mut t: ellipsoid_core::track::Tracker<'_, N, M>,
+    rows: &[([f32; N], Option<u8>)],
+    features: &[String],
+) -> Result<String> {
+    use ellipsoid_core::{EventKind, Explained, Scored};
+    let mut names = features.to_vec();
+    if M == 2 * N {
+        names.extend(features.iter().map(|f| format!("diff_{f}")));
+    }
+    let mut s = String::from(
+        "index,d2,d2_bits,verdict,alarm,fault,event,top_feature,mode,drift_at_bound\n",
+    );
+    for (i, (x, mode)) in rows.iter().enumerate() {
+        let step = t.step_explained(x, *mode);
+        let raised = step.step.events.iter().any(|e| e.kind == EventKind::Raised);
+        let events: Vec<&str> = step.step.events.iter().map(|e| e.kind.name()).collect();
+        let (d2, bits, verdict, k, top) = match (&step.score, step.contributions) {
+            (Ok(b), c) => {
+                let top = c.filter(|_| raised).map(|contributions| {
+                    let e = Explained {
+                        score: Scored {
+                            d2: b.d2,
+                            verdict: b.verdict,
+                        },
+                        contributions,
+                    };
+                    names.get(e.top().0).cloned().unwrap_or_default()
+                });
+                let v = if b.verdict == ellipsoid_core::Verdict::Above {
+                    "above"
+                } else {
+                    "below"
+                };
+                (
+                    format!("{}", b.d2),
+                    format!("{:08x}", b.d2.to_bits()),
+                    v,
+                    b.mode.to_string(),
+                    top.unwrap_or_default(),
+                )
+            }
+            (Err(_), _) => Default::default(),
+        };
+        let verdict = if step.score.is_err() {
+            "fault"
+        } else {
+            verdict
+        };
+        writeln!(
+            s,
+            "{i},{d2},{bits},{verdict},{},{},{},{top},{k},{}",
+            u8::from(step.step.alarm),
+            u8::from(step.step.fault),
+            events.join("+"),
+            u8::from(step.drift_at_bound)
+        )?;
+    }
+    Ok(s)
 }
 
 fn no_model(device: &Path) -> Result<()> {
@@ -1507,6 +1764,132 @@ fn core_flash_figures(s: &mut String, cost: &str, dev: &str, groups: &str) -> Re
     Ok(())
 }
 
+/// The largest blob a 16 KiB model slot holds: the blob, padded to a multiple of 4 bytes, then
+/// the 4-byte confirmation word (`slots::mark_offset`).
+const SLOT_BYTES: usize = 16 * 1024;
+
+fn fits_slot(blob_len: usize) -> bool {
+    ellipsoid_firmware_example::slots::mark_offset(blob_len) + 4 <= SLOT_BYTES
+}
+
+/// The model bank's figures: cost per score for K = 1, 2, 4 at N = 8 and 16 (the `cost_bank`
+/// lines of `score-cost`), a single model on the node's path against the tracker (`cost_v1`),
+/// the tracker's RAM, and blob sizes per K and N with which fit a 16 KiB slot.
+fn bank_figures(s: &mut String, cost: &str) -> Result<()> {
+    let banks: Vec<&str> = cost
+        .lines()
+        .filter(|l| l.starts_with("cost_bank "))
+        .collect();
+    if banks.is_empty() {
+        return Ok(());
+    }
+    let get = |line: &str, k: &str| -> Result<String> {
+        kv(line, k)
+            .map(str::to_string)
+            .ok_or_else(|| anyhow!("no {k}= in {line:?}"))
+    };
+    writeln!(s, "**Model banks** (format version 2; `score-cost`, Cortex-M4F). Each bank has K modes of random")?;
+    writeln!(s, "models of M scored values and the nearest-mode rule, so every score computes all K d²; the readings stay")?;
+    writeln!(s, "close to mode 0, so the alarm stays quiet and drift (rate 0.01, bound 3) follows on every step. `Tracker::step`")?;
+    writeln!(s, "is the core's whole step (window, K scores, alarm machine, drift); the node's `node::track` adds a copy of the")?;
+    writeln!(s, "tracker while the alarm is quiet, so that a reading that raises it can be split per feature for `top`;")?;
+    writeln!(s, "`step_explained` splits every reading (in `f64`), which is what the copy avoids. The bound of the issue,")?;
+    writeln!(s, "K·M(M+1)/2 multiply-adds, is in the `multiply-adds` column. RAM is `size_of::<Tracker<N, M>>()` on the")?;
+    writeln!(s, "device (pinned in `core/src/track.rs`).\n")?;
+    writeln!(s, "| N | M | K | window | differences | drift | `Tracker::step`, instructions | `node::track` | `step_explained` | multiply-adds | instructions per multiply-add | tracker RAM, bytes | blob, bytes |")?;
+    writeln!(s, "|---|---|---|---|---|---|---|---|---|---|---|---|---|")?;
+    let mut rows = Vec::new();
+    for line in &banks {
+        ensure!(
+            get(line, "alarm_quiet")? == "1",
+            "a bank's timed steps were not all quiet: {line:?}"
+        );
+        let n: u32 = get(line, "n")?.parse()?;
+        let m: u32 = get(line, "m")?.parse()?;
+        let k: u32 = get(line, "k")?.parse()?;
+        rows.push((n, m, k, get(line, "w")?, *line));
+    }
+    rows.sort_by(|a, b| (a.0, a.1, &a.3, a.2).cmp(&(b.0, b.1, &b.3, b.2)));
+    for (n, m, k, w, line) in &rows {
+        writeln!(
+            s,
+            "| {n} | {m} | {k} | {w} | {} | {} | {} | {} | {} | {} | {} | {} | {} |",
+            if get(line, "differences")? == "1" {
+                "yes"
+            } else {
+                "no"
+            },
+            if get(line, "drift")? == "1" {
+                "yes"
+            } else {
+                "no"
+            },
+            get(line, "instr_per_score")?,
+            get(line, "instr_node_track")?,
+            get(line, "instr_explained")?,
+            get(line, "multiply_adds")?,
+            get(line, "instr_per_mad")?,
+            get(line, "ram_bytes")?,
+            get(line, "blob_bytes")?,
+        )?;
+    }
+    writeln!(s)?;
+    let v1: Vec<&str> = cost.lines().filter(|l| l.starts_with("cost_v1 ")).collect();
+    if !v1.is_empty() {
+        writeln!(s, "**A single model (format version 1) on the node's path or through the tracker.** The node scores a v1")?;
+        writeln!(s, "blob as before banks (`node::score` on the `FlashModel`, then `node::alarm_update`); the same blob through a")?;
+        writeln!(s, "`Tracker<N, N>` (a bank of one, window 1, no drift) gives the same d² bits but costs more, so the node keeps")?;
+        writeln!(s, "the v1 path:\n")?;
+        writeln!(s, "| N | node's v1 path (score and alarm), instructions | through `Tracker::step` | ratio | same bits |")?;
+        writeln!(s, "|---|---|---|---|---|")?;
+        for line in v1 {
+            ensure!(
+                get(line, "same_bits")? == "1",
+                "v1 and the tracker disagree: {line:?}"
+            );
+            writeln!(
+                s,
+                "| {} | {} | {} | {} | yes |",
+                get(line, "n")?,
+                get(line, "node_score_and_alarm")?,
+                get(line, "tracker_step")?,
+                get(line, "ratio")?,
+            )?;
+        }
+        writeln!(s)?;
+    }
+    writeln!(s, "**Blob sizes** (`ellipsoid_core::blob::max_bank_len`, the longest a bank can encode to, drift on) and which fit")?;
+    writeln!(s, "a 16 KiB model slot (the micro:bit's and the AN386's: the blob, padded to 4 bytes, then the 4-byte")?;
+    writeln!(
+        s,
+        "confirmation word). Without differences M = N, with them M = 2 N.\n"
+    )?;
+    write!(s, "| N | M |")?;
+    for k in 1..=ellipsoid_core::bank::MAX_MODES {
+        write!(s, " K = {k} |")?;
+    }
+    writeln!(s)?;
+    writeln!(
+        s,
+        "|---|---|{}",
+        "---|".repeat(ellipsoid_core::bank::MAX_MODES)
+    )?;
+    for (n, m) in [(5, 5), (5, 10), (8, 8), (8, 16), (16, 16), (16, 32)] {
+        write!(s, "| {n} | {m} |")?;
+        for k in 1..=ellipsoid_core::bank::MAX_MODES {
+            let len = ellipsoid_core::blob::max_bank_len(n, m, k, true);
+            if fits_slot(len) {
+                write!(s, " {len} |")?;
+            } else {
+                write!(s, " {len} (does not fit) |")?;
+            }
+        }
+        writeln!(s)?;
+    }
+    writeln!(s)?;
+    Ok(())
+}
+
 #[allow(clippy::too_many_arguments)]
 fn figures(
     elf: &Path,
@@ -1636,6 +2019,7 @@ fn figures(
     if let Some(g) = groups {
         core_flash_figures(&mut s, &cost_text, &dev_text, &read_text(g)?)?;
     }
+    bank_figures(&mut s, &cost_text)?;
     writeln!(s, "**End to end** (the checks this run passed):\n")?;
     for line in read_text(compared)?
         .lines()
@@ -2027,5 +2411,77 @@ mod tests {
         assert_eq!(kv(l, "event"), Some("fault-cleared+raised"));
         assert_eq!(kv(l, "top"), Some("3"));
         assert_eq!(kv(l, "nope"), None);
+    }
+}
+
+#[cfg(test)]
+mod bank_tests {
+    use super::*;
+
+    const COST: &str = "\
+cost_v1 n=8 reps=4000 node_score_and_alarm=394.0 tracker_step=742.0 ratio=1.883 same_bits=1
+cost_bank n=8 m=8 k=2 w=1 differences=0 drift=0 reps=4000 instr_per_score=981.0 instr_node_track=1875.0 instr_explained=10103.5 multiply_adds=72 instr_per_mad=13.63 ram_bytes=896 blob_bytes=524 alarm_quiet=1
+cost_bank n=8 m=8 k=1 w=1 differences=0 drift=0 reps=4000 instr_per_score=742.0 instr_node_track=1636.0 instr_explained=9766.0 multiply_adds=36 instr_per_mad=20.61 ram_bytes=896 blob_bytes=276 alarm_quiet=1
+";
+
+    #[test]
+    fn bank_figures_sort_the_rows_say_which_blobs_fit_and_refuse_an_unquiet_run() {
+        let mut s = String::new();
+        bank_figures(&mut s, COST).unwrap();
+        let k1 = s.find("| 8 | 8 | 1 | 1 | no | no | 742.0 |").unwrap();
+        let k2 = s.find("| 8 | 8 | 2 | 1 | no | no | 981.0 |").unwrap();
+        assert!(k1 < k2, "{s}");
+        assert!(s.contains("| 8 | 394.0 | 742.0 | 1.883 | yes |"), "{s}");
+        // N = 16 with differences: one mode is 2 504 bytes of floats, so 7 modes do not fit.
+        let row = s.lines().find(|l| l.starts_with("| 16 | 32 |")).unwrap();
+        assert!(row.contains("(does not fit)"), "{row}");
+        assert!(!s
+            .lines()
+            .find(|l| l.starts_with("| 5 | 5 |"))
+            .unwrap()
+            .contains("does not"));
+        assert!(fits_slot(SLOT_BYTES - 4) && !fits_slot(SLOT_BYTES - 3));
+        let loud = COST.replace("alarm_quiet=1", "alarm_quiet=0");
+        assert!(bank_figures(&mut String::new(), &loud).is_err());
+        assert!(bank_figures(&mut String::new(), "cost n=8\n").is_ok());
+    }
+
+    fn compare_files(dev: &str, rep: &str) -> Result<()> {
+        let dir = std::env::temp_dir().join(format!("node-tool-bank-{}", std::process::id()));
+        fs::create_dir_all(&dir).unwrap();
+        let (d, r, c) = (dir.join("dev.log"), dir.join("rep.csv"), dir.join("in.csv"));
+        fs::write(&d, dev).unwrap();
+        fs::write(&r, rep).unwrap();
+        fs::write(&c, "timestamp,a,b,label\n").unwrap();
+        let out = compare(&d, &r, &c, &["timestamp".into(), "label".into()], "A", None);
+        let _ = fs::remove_dir_all(&dir);
+        out
+    }
+
+    const DEV: &str = "model slot=A seq=1 modes=2\n\
+pin fault off level=low at=boot\npin alarm off level=low at=boot\n\
+r 0 d2=- v=fault mode=- alarm=0 fault=1 event=fault drift=0 cause=window-filling:1\n\
+pin fault on level=high at=0\n\
+r 1 d2=3f800000 v=below mode=1 alarm=0 fault=0 event=fault-cleared+drift drift=1\n\
+pin fault off level=low at=1\nend scored=1 faults=1\nleds=00\n";
+    const REP: &str =
+        "index,d2,d2_bits,verdict,alarm,fault,event,top_feature,mode,drift_at_bound\n\
+0,,,fault,0,1,fault,,,0\n1,1,3f800000,below,0,0,fault-cleared+drift,,1,1\n";
+
+    #[test]
+    fn compare_checks_a_banks_mode_and_drift_flag() {
+        compare_files(DEV, REP).unwrap();
+        let other_mode = DEV.replace("v=below mode=1", "v=below mode=0");
+        let e = compare_files(&other_mode, REP).unwrap_err();
+        assert!(e.to_string().contains("1 mismatches"), "{e}");
+        let no_drift = DEV.replace("drift drift=1", "drift drift=0");
+        assert!(compare_files(&no_drift, REP).is_err());
+        // A log without the bank's fields against a bank's replay that says mode 1: refused.
+        let single = DEV
+            .replace(" mode=1", "")
+            .replace(" mode=-", "")
+            .replace(" drift=1", "")
+            .replace(" drift=0", "");
+        assert!(compare_files(&single, REP).is_err());
     }
 }
