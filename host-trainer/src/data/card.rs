@@ -15,12 +15,76 @@ use serde::{Deserialize, Serialize};
 
 use crate::data::output;
 
-/// The card format this trainer writes and reads. Version 2 added `names_digest`.
-pub const CARD_VERSION: u32 = 2;
+/// The card format this trainer writes. Version 2 added `names_digest`; version 3 the bank's
+/// fields ([`ModelCard::modes`], [`ModelCard::mode_column`], window, differences, drift), which a
+/// single-model card leaves out. Versions 2 and 3 are read.
+pub const CARD_VERSION: u32 = 3;
+
+/// The oldest card format this trainer reads.
+pub const CARD_VERSION_OLDEST: u32 = 2;
+
+/// One mode of a bank, as the card lists it.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct CardMode {
+    /// The mode's number: the mode column's value for a known-mode bank.
+    pub mode: u8,
+    /// Baseline samples of this mode (fitted and held out).
+    pub samples: u64,
+    /// Its share of the baseline's samples.
+    pub weight: f64,
+    /// Its alarm limit on d².
+    pub alarm: f32,
+    /// Its clear limit on d².
+    pub clear: f32,
+    /// The expected false readings a day the limit promises on this mode's samples.
+    pub expected_false_readings_per_day: f64,
+    /// The same, not exceeded with [`CardMode::confidence`].
+    pub at_most_false_readings_per_day: f64,
+    /// Confidence of that figure.
+    pub confidence: f64,
+}
+
+/// Drift of a bank, as the card states it.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct CardDrift {
+    /// Half-life of the re-centring, in readings.
+    pub half_life_readings: f64,
+    /// The rate `1 − 0.5^(1/half-life)`.
+    pub rate: f64,
+    /// The bound of the total shift of each scored value, in standard deviations.
+    pub bound_sigma: f64,
+    /// That bound in model units (after the log, before offset and scale), per scored value.
+    pub bound: Vec<f64>,
+    /// The pooled within-mode standard deviation each bound is a multiple of, model units.
+    pub sd: Vec<f64>,
+}
+
+fn is_false(b: &bool) -> bool {
+    !*b
+}
+
+fn is_one(w: &u8) -> bool {
+    *w == 1
+}
+
+fn one() -> u8 {
+    1
+}
 
 /// CRC-32 (the blob's own checksum) of the blob's CRC, then each feature name and each log
 /// feature name, in order, each ended by a zero byte, the two lists separated by a `0x01` byte.
 pub fn names_digest(blob_crc: u32, features: &[String], log_features: &[String]) -> String {
+    digest_with_mode(blob_crc, features, log_features, None)
+}
+
+/// [`names_digest`], then for a known-mode bank a `0x02` byte and the mode column's name, so that
+/// a mode column renamed by hand in the card is refused as well (without one: the same digest).
+pub fn digest_with_mode(
+    blob_crc: u32,
+    features: &[String],
+    log_features: &[String],
+    mode_column: Option<&str>,
+) -> String {
     let mut bytes = blob_crc.to_le_bytes().to_vec();
     for name in features {
         bytes.extend_from_slice(name.as_bytes());
@@ -30,6 +94,10 @@ pub fn names_digest(blob_crc: u32, features: &[String], log_features: &[String])
     for name in log_features {
         bytes.extend_from_slice(name.as_bytes());
         bytes.push(0);
+    }
+    if let Some(mc) = mode_column {
+        bytes.push(2);
+        bytes.extend_from_slice(mc.as_bytes());
     }
     format!("{:08x}", ellipsoid_core::blob::checksum(&bytes))
 }
@@ -60,6 +128,27 @@ pub struct ModelCard {
     pub rate_hz: f64,
     /// The baseline file the model was trained on.
     pub trained_on: String,
+    /// A bank's modes (empty for a single model).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub modes: Vec<CardMode>,
+    /// How a bank picks the mode: `"nearest"` or `"known"` (absent for a single model).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub select: Option<String>,
+    /// A known-mode bank: the column of the readings that holds the mode (part of the digest).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub mode_column: Option<String>,
+    /// Readings averaged in the window (1: none).
+    #[serde(default = "one", skip_serializing_if = "is_one")]
+    pub window: u8,
+    /// First differences scored beside the window's mean.
+    #[serde(default, skip_serializing_if = "is_false")]
+    pub differences: bool,
+    /// The names of the scored values when they are not the features (window differences).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub scored_features: Vec<String>,
+    /// Slow-drift re-centring, if on.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub drift: Option<CardDrift>,
 }
 
 impl ModelCard {
@@ -94,11 +183,13 @@ impl ModelCard {
         let value: serde_json::Value = serde_json::from_str(&text)
             .with_context(|| format!("{}: not a valid model card", path.display()))?;
         let version = value.get("version").and_then(serde_json::Value::as_u64);
-        if version.is_some_and(|v| v != u64::from(CARD_VERSION)) {
+        if version.is_some_and(|v| {
+            !(u64::from(CARD_VERSION_OLDEST)..=u64::from(CARD_VERSION)).contains(&v)
+        }) {
             bail!(
-                "{}: a model card of version {}; this trainer reads version {CARD_VERSION} \
-                 (whose feature names are protected by a digest): fit the model again, or give \
-                 --features NAME,... in model order",
+                "{}: a model card of version {}; this trainer reads versions {CARD_VERSION_OLDEST} \
+                 to {CARD_VERSION} (whose feature names are protected by a digest): fit the model \
+                 again, or give --features NAME,... in model order",
                 path.display(),
                 version.unwrap_or(0)
             );
@@ -135,7 +226,12 @@ impl ModelCard {
         if let Some(twice) = card.features.iter().find(|f| !seen.insert(f.as_str())) {
             bail!("{}: names the feature `{twice}` twice", path.display());
         }
-        let want = names_digest(card.blob_crc, &card.features, &card.log_features);
+        let want = digest_with_mode(
+            card.blob_crc,
+            &card.features,
+            &card.log_features,
+            card.mode_column.as_deref(),
+        );
         if card.names_digest != want {
             bail!(
                 "{}: its feature names ({}) were changed after fit wrote the card (their digest \
@@ -178,6 +274,13 @@ mod tests {
             alpha: 1e-4,
             rate_hz: 1.0,
             trained_on: "x.csv".into(),
+            modes: vec![],
+            select: None,
+            mode_column: None,
+            window: 1,
+            differences: false,
+            scored_features: vec![],
+            drift: None,
         };
         card.write(&ModelCard::path_for(&blob_path)).unwrap();
         assert_eq!(ModelCard::read_for(&blob_path, &blob).unwrap(), card);
@@ -195,5 +298,68 @@ mod tests {
         logged.log_features.push("a".into());
         logged.write(&ModelCard::path_for(&blob_path)).unwrap();
         assert!(ModelCard::read_for(&blob_path, &blob).is_err());
+        // A version-2 card (written before banks) still reads, and writes no bank field.
+        let mut v2 = card.clone();
+        v2.version = 2;
+        v2.write(&ModelCard::path_for(&blob_path)).unwrap();
+        assert_eq!(ModelCard::read_for(&blob_path, &blob).unwrap(), v2);
+        let text = std::fs::read_to_string(ModelCard::path_for(&blob_path)).unwrap();
+        for field in ["modes", "mode_column", "window", "drift", "differences"] {
+            assert!(!text.contains(field), "{field} in {text}");
+        }
+        let mut v1 = card.clone();
+        v1.version = 1;
+        v1.write(&ModelCard::path_for(&blob_path)).unwrap();
+        let e = ModelCard::read_for(&blob_path, &blob).unwrap_err();
+        assert!(e.to_string().contains("versions 2 to 3"), "{e}");
+    }
+
+    #[test]
+    fn a_renamed_mode_column_is_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        let blob_path = dir.path().join("m.blob");
+        let blob = [1u8, 2, 3, 4, 5, 6, 7, 8];
+        let features = vec!["a".to_string()];
+        let card = ModelCard {
+            kind: "ellipsoid-model-card".into(),
+            version: CARD_VERSION,
+            features: features.clone(),
+            log_features: vec![],
+            blob_crc: blob_crc(&blob),
+            blob_len: blob.len(),
+            names_digest: digest_with_mode(blob_crc(&blob), &features, &[], Some("speed")),
+            threshold_method: "hotelling".into(),
+            alpha: 1e-4,
+            rate_hz: 1.0,
+            trained_on: "x.csv".into(),
+            modes: vec![CardMode {
+                mode: 0,
+                samples: 10,
+                weight: 1.0,
+                alarm: 20.0,
+                clear: 15.0,
+                expected_false_readings_per_day: 1.0,
+                at_most_false_readings_per_day: 2.0,
+                confidence: 0.9,
+            }],
+            select: Some("known".into()),
+            mode_column: Some("speed".into()),
+            window: 4,
+            differences: true,
+            scored_features: vec!["a".into(), "Δa".into()],
+            drift: None,
+        };
+        card.write(&ModelCard::path_for(&blob_path)).unwrap();
+        assert_eq!(ModelCard::read_for(&blob_path, &blob).unwrap(), card);
+        let mut renamed = card.clone();
+        renamed.mode_column = Some("valve".into());
+        renamed.write(&ModelCard::path_for(&blob_path)).unwrap();
+        let e = ModelCard::read_for(&blob_path, &blob).unwrap_err();
+        assert!(e.to_string().contains("were changed after fit"), "{e}");
+        // Without the mode column the digest is the single model's.
+        assert_eq!(
+            digest_with_mode(7, &features, &[], None),
+            names_digest(7, &features, &[])
+        );
     }
 }

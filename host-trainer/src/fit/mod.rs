@@ -42,6 +42,7 @@ use crate::stats::moments::correlation_of;
 mod check;
 mod estimate;
 pub mod memory;
+pub mod mixture;
 mod outliers;
 mod parquet;
 mod read;

@@ -3,6 +3,7 @@
 //! ([`summary`]) and scoring a labelled file ([`evaluate`]).
 //! Nothing here parses a command line or prints.
 
+pub mod bank;
 pub mod evaluate;
 pub mod fit_report;
 pub mod fleet;

@@ -447,6 +447,13 @@ pub fn train_with(
         alpha,
         rate_hz: a.rate_hz,
         trained_on: a.baseline.display().to_string(),
+        modes: Vec::new(),
+        select: None,
+        mode_column: None,
+        window: 1,
+        differences: false,
+        scored_features: Vec::new(),
+        drift: None,
     };
     Ok(Trained {
         quantised,
