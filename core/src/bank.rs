@@ -1114,4 +1114,58 @@ mod tests {
         let text = std::format!("{}", DecodeError::Version { found: 2 });
         assert!(text.contains("bank reader"), "{text}");
     }
+
+    /// FORMAT.md's "Size" figures of version 2 at N = 8.
+    #[test]
+    fn bank_sizes_for_n8() {
+        let mut w = [[0.0f32; 8]; 8];
+        for (i, row) in w.iter_mut().enumerate() {
+            row[i] = 1.0;
+        }
+        let mode = ModeParams::<8> {
+            offset: [0.0; 8],
+            scale: [1.0; 8],
+            mean: [0.0; 8],
+            w,
+            thresholds: Thresholds {
+                alarm: 26.1,
+                clear: 20.0,
+            },
+        };
+        let modes = [mode; 4];
+        let mut buf = [0u8; blob::max_bank_len(8, 8, 4, true)];
+        for (k, drift, want) in [
+            (1, false, 284),
+            (2, false, 532),
+            (4, false, 1028),
+            (1, true, 320),
+            (4, true, 1064),
+        ] {
+            let p = BankParams::<8, 8> {
+                meta: ModelMeta {
+                    model_id: 0x00AB_CDEF,
+                    trained_at: 1_780_000_000,
+                    sequence: 1,
+                },
+                log_mask: 0,
+                select: ModeSelect::Nearest,
+                modes: &modes[..k],
+                window: WindowSpec::single(),
+                drift: drift.then_some(DriftSpec {
+                    rate: 0.01,
+                    bound: [3.0; 8],
+                }),
+                policy: AlarmPolicy {
+                    raise_after: 3,
+                    clear_after: 300,
+                    latch: false,
+                },
+                names_digest: 0x1234_5678,
+            };
+            assert_eq!(blob::encode_bank(&p, &mut buf), Ok(want), "K = {k}");
+            assert!(want <= blob::max_bank_len(8, 8, k, drift));
+        }
+        assert_eq!(blob::floats_len(16), 744);
+        assert_eq!(blob::floats_len(32), 2504);
+    }
 }
