@@ -196,20 +196,22 @@ impl Reference {
             Err("log-domain:0".into())
         } else {
             self.ring.push(x);
-            if valid.is_none() {
-                Err(format!(
+            match valid {
+                None => Err(format!(
                     "unknown-mode:{}",
                     mode.map_or("-".into(), |k| k.to_string())
-                ))
-            } else if self.ring.len() < Self::W_LEN {
-                Err(format!("window-filling:{}", Self::W_LEN - self.ring.len()))
-            } else {
-                let last = &self.ring[self.ring.len() - Self::W_LEN..];
-                let mean = last.iter().sum::<f64>() / Self::W_LEN as f64;
-                let diff = last[3] - last[2];
-                let t = [mean.ln() - self.shift[0], diff - self.shift[1]];
-                let k = usize::from(valid.unwrap());
-                Ok((k as u8, Self::d2(k, t), t))
+                )),
+                Some(_) if self.ring.len() < Self::W_LEN => {
+                    Err(format!("window-filling:{}", Self::W_LEN - self.ring.len()))
+                }
+                Some(k) => {
+                    let last = &self.ring[self.ring.len() - Self::W_LEN..];
+                    let mean = last.iter().sum::<f64>() / Self::W_LEN as f64;
+                    let diff = last[3] - last[2];
+                    let t = [mean.ln() - self.shift[0], diff - self.shift[1]];
+                    let k = usize::from(k);
+                    Ok((k as u8, Self::d2(k, t), t))
+                }
             }
         };
         let quiet_before = !self.raised;
@@ -243,8 +245,8 @@ impl Reference {
         if let Ok((k, d2, t)) = &result {
             if *d2 <= Self::ALARM && quiet_before && !self.raised {
                 let mut first = None;
-                for i in 0..2 {
-                    let d = t[i] - Self::center(usize::from(*k), i);
+                for (i, ti) in t.iter().enumerate() {
+                    let d = ti - Self::center(usize::from(*k), i);
                     let s = (self.shift[i] + Self::RATE * d).clamp(-Self::BOUND[i], Self::BOUND[i]);
                     self.shift[i] = s;
                     if first.is_none() && s.abs() >= Self::BOUND[i] {
