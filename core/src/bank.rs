@@ -799,6 +799,7 @@ impl<'a, const N: usize, const M: usize> FlashBank<'a, N, M> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    extern crate std;
     use crate::{blob, Model, ModelParams, Preprocess};
 
     fn single() -> ModelParams<3> {
@@ -876,5 +877,295 @@ mod tests {
             crate::FlashModel::<3>::from_blob(&buf[..n]),
             Err(DecodeError::Version { found: 2 })
         );
+    }
+
+    fn two_modes() -> [ModeParams<2>; 2] {
+        let m = ModeParams {
+            offset: [1.0, 0.0],
+            scale: [2.0, 1.0],
+            mean: [0.0, 0.0],
+            w: [[1.0, 0.0], [0.5, 1.0]],
+            thresholds: Thresholds {
+                alarm: 9.0,
+                clear: 4.0,
+            },
+        };
+        [
+            m,
+            ModeParams {
+                offset: [5.0, 0.0],
+                ..m
+            },
+        ]
+    }
+
+    fn base(modes: &[ModeParams<2>]) -> BankParams<'_, 1, 2> {
+        BankParams {
+            meta: ModelMeta::default(),
+            log_mask: 0,
+            select: ModeSelect::Nearest,
+            modes,
+            window: WindowSpec {
+                length: 3,
+                differences: true,
+            },
+            drift: Some(DriftSpec {
+                rate: 0.1,
+                bound: [1.0, 2.0],
+            }),
+            policy: AlarmPolicy::default(),
+            names_digest: 1,
+        }
+    }
+
+    fn reseal(b: &mut [u8]) {
+        let n = b.len();
+        let crc = blob::checksum(&b[..n - 4]);
+        b[n - 4..].copy_from_slice(&crc.to_le_bytes());
+    }
+
+    /// Every bank rule: the encoder refuses the parameters with an error, and the blob of the
+    /// same parameters (written without the rules) is refused by the decoder with the same one.
+    #[test]
+    fn each_bank_rule_is_refused_the_same_way_by_encode_and_decode() {
+        let modes = two_modes();
+        let mut bad_scale = two_modes();
+        bad_scale[1].scale[0] = -1.0;
+        let nine = [modes[0]; 9];
+        let cases: [(BankParams<'_, 1, 2>, BankError); 11] = [
+            (
+                BankParams {
+                    modes: &[],
+                    ..base(&modes)
+                },
+                BankError::Modes { count: 0 },
+            ),
+            (
+                BankParams {
+                    modes: &nine,
+                    ..base(&modes)
+                },
+                BankError::Modes { count: 9 },
+            ),
+            (
+                BankParams {
+                    window: WindowSpec {
+                        length: 0,
+                        differences: true,
+                    },
+                    ..base(&modes)
+                },
+                BankError::Window(WindowError::Length { length: 0 }),
+            ),
+            (
+                BankParams {
+                    window: WindowSpec {
+                        length: 17,
+                        differences: true,
+                    },
+                    ..base(&modes)
+                },
+                BankError::Window(WindowError::Length { length: 17 }),
+            ),
+            (
+                BankParams {
+                    log_mask: 0b10,
+                    ..base(&modes)
+                },
+                BankError::Window(WindowError::LogMask),
+            ),
+            (
+                BankParams {
+                    policy: AlarmPolicy {
+                        raise_after: 0,
+                        ..AlarmPolicy::default()
+                    },
+                    ..base(&modes)
+                },
+                BankError::PolicyRange,
+            ),
+            (
+                BankParams {
+                    modes: &bad_scale,
+                    ..base(&modes)
+                },
+                BankError::Mode {
+                    mode: 1,
+                    error: ModelError::Scale { index: 0 },
+                },
+            ),
+            (
+                BankParams {
+                    drift: Some(DriftSpec {
+                        rate: 0.0,
+                        bound: [1.0, 1.0],
+                    }),
+                    ..base(&modes)
+                },
+                BankError::DriftRate,
+            ),
+            (
+                BankParams {
+                    drift: Some(DriftSpec {
+                        rate: 1.0,
+                        bound: [1.0, 1.0],
+                    }),
+                    ..base(&modes)
+                },
+                BankError::DriftRate,
+            ),
+            (
+                BankParams {
+                    drift: Some(DriftSpec {
+                        rate: f32::NAN,
+                        bound: [1.0, 1.0],
+                    }),
+                    ..base(&modes)
+                },
+                BankError::DriftRate,
+            ),
+            (
+                BankParams {
+                    drift: Some(DriftSpec {
+                        rate: 0.5,
+                        bound: [1.0, f32::INFINITY],
+                    }),
+                    ..base(&modes)
+                },
+                BankError::DriftBound { index: 1 },
+            ),
+        ];
+        for (p, want) in cases {
+            let mut buf = [0u8; 1024];
+            assert_eq!(
+                blob::encode_bank(&p, &mut buf),
+                Err(blob::EncodeError::InvalidBank(want)),
+                "{want:?}"
+            );
+            let n = blob::write_bank(&p, &mut buf).unwrap();
+            assert_eq!(
+                FlashBank::<1, 2>::from_blob(&buf[..n]),
+                Err(DecodeError::Bank(want)),
+                "{want:?}"
+            );
+        }
+        // A zero bound too, and the good base both ways.
+        let mut p = base(&modes);
+        p.drift = Some(DriftSpec {
+            rate: 0.5,
+            bound: [0.0, 1.0],
+        });
+        assert_eq!(p.validate(), Err(BankError::DriftBound { index: 0 }));
+        let mut buf = [0u8; 1024];
+        let n = blob::encode_bank(&base(&modes), &mut buf).unwrap();
+        // Six varints at one byte each instead of their longest: 25 bytes under the bound.
+        assert_eq!(n, blob::max_bank_len(1, 2, 2, true) - 25);
+        assert!(FlashBank::<1, 2>::from_blob(&buf[..n]).is_ok());
+    }
+
+    /// The bytes no typed parameter can write: a selection byte beyond 1, option bits beyond
+    /// the two, and the fixed-point flag on a bank.
+    #[test]
+    fn bytes_beyond_the_types_are_refused() {
+        let modes = two_modes();
+        let mut buf = [0u8; 1024];
+        let n = blob::encode_bank(&base(&modes), &mut buf).unwrap();
+        // Varints: model_id 0, trained_at 0, sequence 0, log_mask 0 (one byte each) from 10,
+        // the digest 14..18, then select, K, w, options.
+        assert_eq!(buf[18..22], [0, 2, 3, 0b11]);
+        let mut b = buf;
+        b[18] = 2;
+        reseal(&mut b[..n]);
+        assert_eq!(
+            FlashBank::<1, 2>::from_blob(&b[..n]),
+            Err(DecodeError::Bank(BankError::Select { found: 2 }))
+        );
+        let mut b = buf;
+        b[21] = 0b111;
+        reseal(&mut b[..n]);
+        assert_eq!(
+            FlashBank::<1, 2>::from_blob(&b[..n]),
+            Err(DecodeError::Bank(BankError::Options { found: 0b111 }))
+        );
+        // Drift off in the options byte, its floats still there: the policy varints are read
+        // from the rate's bytes (`cd cc cc 3d`, too long for a u16).
+        let mut b = buf;
+        b[21] = 0b01;
+        reseal(&mut b[..n]);
+        assert_eq!(
+            FlashBank::<1, 2>::from_blob(&b[..n]),
+            Err(DecodeError::Body)
+        );
+        let mut b = buf;
+        b[6] |= blob::FLAG_FIXED;
+        reseal(&mut b[..n]);
+        assert_eq!(
+            FlashBank::<1, 2>::from_blob(&b[..n]),
+            Err(DecodeError::FixedBank)
+        );
+        // The fixed-point reader refuses a bank by its version.
+        assert_eq!(
+            crate::fixed::decode::<1, 1>(&buf[..n]),
+            Err(DecodeError::Version { found: 2 })
+        );
+        // And the messages say what is wrong.
+        let text = std::format!("{}", DecodeError::FixedBank);
+        assert!(text.contains("no bank"), "{text}");
+        let text = std::format!("{}", DecodeError::Version { found: 2 });
+        assert!(text.contains("bank reader"), "{text}");
+    }
+
+    /// FORMAT.md's "Size" figures of version 2 at N = 8.
+    #[test]
+    fn bank_sizes_for_n8() {
+        let mut w = [[0.0f32; 8]; 8];
+        for (i, row) in w.iter_mut().enumerate() {
+            row[i] = 1.0;
+        }
+        let mode = ModeParams::<8> {
+            offset: [0.0; 8],
+            scale: [1.0; 8],
+            mean: [0.0; 8],
+            w,
+            thresholds: Thresholds {
+                alarm: 26.1,
+                clear: 20.0,
+            },
+        };
+        let modes = [mode; 4];
+        let mut buf = [0u8; blob::max_bank_len(8, 8, 4, true)];
+        for (k, drift, want) in [
+            (1, false, 284),
+            (2, false, 532),
+            (4, false, 1028),
+            (1, true, 320),
+            (4, true, 1064),
+        ] {
+            let p = BankParams::<8, 8> {
+                meta: ModelMeta {
+                    model_id: 0x00AB_CDEF,
+                    trained_at: 1_780_000_000,
+                    sequence: 1,
+                },
+                log_mask: 0,
+                select: ModeSelect::Nearest,
+                modes: &modes[..k],
+                window: WindowSpec::single(),
+                drift: drift.then_some(DriftSpec {
+                    rate: 0.01,
+                    bound: [3.0; 8],
+                }),
+                policy: AlarmPolicy {
+                    raise_after: 3,
+                    clear_after: 300,
+                    latch: false,
+                },
+                names_digest: 0x1234_5678,
+            };
+            assert_eq!(blob::encode_bank(&p, &mut buf), Ok(want), "K = {k}");
+            assert!(want <= blob::max_bank_len(8, 8, k, drift));
+        }
+        assert_eq!(blob::floats_len(16), 744);
+        assert_eq!(blob::floats_len(32), 2504);
     }
 }

@@ -654,6 +654,15 @@ pub fn encode_bank<const N: usize, const M: usize>(
     buf: &mut [u8],
 ) -> Result<usize, EncodeError> {
     p.validate().map_err(EncodeError::InvalidBank)?;
+    write_bank(p, buf)
+}
+
+/// The bytes of [`encode_bank`], without the rules (the tests write broken banks with it, to
+/// check that the decoder refuses what the encoder refuses).
+pub(crate) fn write_bank<const N: usize, const M: usize>(
+    p: &crate::bank::BankParams<'_, N, M>,
+    buf: &mut [u8],
+) -> Result<usize, EncodeError> {
     let mut w = Writer::new(buf, HEADER_LEN);
     w.put(&p.meta.model_id)?;
     w.put(&p.meta.trained_at)?;
@@ -1040,6 +1049,20 @@ mod tests {
     fn crc_matches_the_catalogue_check_value() {
         assert_eq!(checksum(b"123456789"), 0xCBF4_3926);
         assert_eq!(checksum(b"123456789"), crc::CRC_32_ISO_HDLC.check);
+    }
+
+    /// The names digest is the CRC-32/ISO-HDLC of the names each followed by a line feed:
+    /// Python's `zlib.crc32(b"flow\ntemp\nvibration\n")` gives 0xb6a8805e and
+    /// `zlib.crc32(b"a\nb\n")` 0x18572a97 (run on this machine, Python 3's standard library);
+    /// no names give the CRC of no bytes, 0.
+    #[test]
+    fn names_digest_matches_python_zlib() {
+        assert_eq!(names_digest(["flow", "temp", "vibration"]), 0xb6a8_805e);
+        assert_eq!(names_digest(["a", "b"]), 0x1857_2a97);
+        assert_eq!(names_digest([]), 0);
+        // The order matters, and the separator keeps "ab" + "" apart from "a" + "b".
+        assert_ne!(names_digest(["b", "a"]), names_digest(["a", "b"]));
+        assert_ne!(names_digest(["ab", ""]), names_digest(["a", "b"]));
     }
 
     #[test]

@@ -16,6 +16,11 @@
 //! * [`model`]: the compiled [`Model`] and the maths of a score, its per-feature contributions and
 //!   its log-density. This is the definition of a score: the host's replay calls it too.
 //! * [`alarm`]: the policy, a pure state machine from scores to alarm and fault lines.
+//! * [`window`], [`bank`], [`track`]: a model bank (format version 2): up to [`MAX_MODES`]
+//!   Gaussians of operating modes with the rule that picks a reading's mode, a window of up to
+//!   [`MAX_WINDOW`] readings (mean and first differences), and slow drift of the centre, chained
+//!   by the [`Tracker`] into the alarm machine. A version 1 blob runs through the `Tracker` too,
+//!   with the same bits as [`FlashModel`] and [`AlarmMachine`].
 //!
 //! Check once, then never fail: [`Model::from_blob`] validates every field, and after that
 //! [`Model::score`] cannot fail except for a reading it cannot score, which is a distinct
@@ -39,6 +44,18 @@
 //! fixed-point [`FixedModel`] for parts without an FPU ([`fixed`]) takes 144 bytes at N = 8.
 //!
 //! Scoring itself uses `4 N` bytes of stack for the deviation vector, plus a few registers.
+//!
+//! A model bank's [`Tracker`] holds the [`FlashBank`] view (the centres of [`MAX_MODES`] modes,
+//! `32 M` bytes, and a few scalars), the [`Window`] ring (`64 N` bytes: [`MAX_WINDOW`] readings,
+//! whatever the window's length), the alarm machine and the drift shift (`4 M`). On thumbv7em
+//! (pinned at compile time in `track.rs`):
+//!
+//! | N, M | `Tracker` | of which `FlashBank` | `Window` |
+//! |---|---|---|---|
+//! | 8, 8 | 896 | 312 | 520 |
+//! | 8, 16 (differences) | 1 184 | 568 | 520 |
+//! | 16, 16 | 1 696 | 568 | 1 032 |
+//! | 16, 32 (differences) | 2 272 | 1 080 | 1 032 |
 //!
 //! # Using it from flash
 //!

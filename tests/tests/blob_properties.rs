@@ -217,3 +217,229 @@ proptest! {
         }
     }
 }
+
+// ---------------------------------------------------------------------------------------------
+// Version 2: the model bank.
+
+use ellipsoid_core::{
+    AlarmMachine, BankParams, DriftSpec, FlashBank, ModeParams, ModeSelect, Tracker, WindowSpec,
+};
+
+/// A bank's parameters, owned (a `BankParams` borrows its modes).
+#[derive(Clone, Debug)]
+struct OwnedBank<const M: usize> {
+    meta: ModelMeta,
+    log_mask: u32,
+    select: ModeSelect,
+    modes: Vec<ModeParams<M>>,
+    length: u8,
+    drift: Option<DriftSpec<M>>,
+    policy: AlarmPolicy,
+    names_digest: u32,
+}
+
+impl<const M: usize> OwnedBank<M> {
+    fn params<const N: usize>(&self) -> BankParams<'_, N, M> {
+        BankParams {
+            meta: self.meta,
+            log_mask: self.log_mask,
+            select: self.select,
+            modes: &self.modes,
+            window: WindowSpec {
+                length: self.length,
+                differences: M == 2 * N,
+            },
+            drift: self.drift,
+            policy: self.policy,
+            names_digest: self.names_digest,
+        }
+    }
+}
+
+/// Any valid bank of `N` raw and `M` scored features: 1 to 3 modes, each any valid model of `M`
+/// features, a log mask on the raw features only, any window length, drift or not.
+fn bank<const N: usize, const M: usize>() -> impl Strategy<Value = OwnedBank<M>> {
+    (
+        proptest::collection::vec(params::<M>(), 1..=3),
+        any::<u32>(),
+        any::<bool>(),
+        1u8..=16,
+        proptest::option::of((
+            1.0e-4f32..0.9999,
+            proptest::array::uniform::<_, M>(1.0e-3f32..1.0e3),
+        )),
+        any::<u32>(),
+    )
+        .prop_map(|(models, mask, known, length, drift, digest)| {
+            let first = models[0];
+            OwnedBank {
+                meta: first.meta,
+                log_mask: if N >= 32 {
+                    mask
+                } else {
+                    mask & ((1u32 << N) - 1)
+                },
+                select: if known {
+                    ModeSelect::Known
+                } else {
+                    ModeSelect::Nearest
+                },
+                modes: models
+                    .iter()
+                    .map(|p| ModeParams {
+                        offset: p.preprocess.offset,
+                        scale: p.preprocess.scale,
+                        mean: p.mean,
+                        w: p.w,
+                        thresholds: p.thresholds,
+                    })
+                    .collect(),
+                length,
+                drift: drift.map(|(rate, bound)| DriftSpec { rate, bound }),
+                policy: first.policy,
+                names_digest: digest,
+            }
+        })
+}
+
+fn encode_bank<const N: usize, const M: usize>(p: &BankParams<'_, N, M>) -> Vec<u8> {
+    let mut buf = vec![0u8; blob::max_bank_len(N, M, p.modes.len(), p.drift.is_some())];
+    let n = blob::encode_bank(p, &mut buf).expect("a valid bank encodes");
+    buf.truncate(n);
+    buf
+}
+
+/// What a decoder accepted, written again: for a version 2 blob, the same bytes. (Every field
+/// is stored bit for bit or as a canonical varint, so a blob that decodes has exactly one
+/// encoding, and encode and decode hold it to the same rules.)
+fn reencoded<const N: usize, const M: usize>(b: &FlashBank<'_, N, M>) -> Vec<u8> {
+    let mut modes = vec![b.mode_params(0).unwrap(); b.modes()];
+    let p = b.params(&mut modes).unwrap();
+    encode_bank(&p)
+}
+
+macro_rules! bank_props {
+    ($($name:ident = ($n:literal, $m:literal, $cases:literal)),*) => {$(
+        mod $name {
+            use super::*;
+            proptest! {
+                // Each case decodes every single-bit flip of a blob of up to three modes,
+                // twice over: few cases keep the suite's time in check.
+                #![proptest_config(ProptestConfig::with_cases($cases))]
+
+                /// encode → decode gives the parameters back, and re-encoding the same bytes; a
+                /// Tracker on it takes any readings (bad ones too) without a panic and never
+                /// scores a non-finite d².
+                #[test]
+                fn bank_round_trip_is_bit_exact(
+                    o in bank::<$n, $m>(),
+                    xs in proptest::collection::vec(proptest::array::uniform::<_, $n>(
+                        prop_oneof![8 => -2.0e3f32..2.0e3, 1 => Just(f32::NAN), 1 => Just(0.0f32)]), 0..40),
+                    modes in proptest::collection::vec(proptest::option::of(0u8..4), 40),
+                ) {
+                    let p = o.params::<$n>();
+                    let bytes = encode_bank(&p);
+                    prop_assert!(bytes.len() <= blob::max_bank_len($n, $m, p.modes.len(), p.drift.is_some()));
+                    let b = FlashBank::<$n, $m>::from_blob(&bytes).unwrap();
+                    let mut out = o.modes.clone();
+                    prop_assert_eq!(b.params(&mut out), Some(p));
+                    prop_assert_eq!(reencoded(&b), bytes.clone());
+                    let mut t = Tracker::<$n, $m>::from_blob(&bytes).unwrap();
+                    for (x, k) in xs.iter().zip(&modes) {
+                        let s = t.step(x, *k);
+                        if let Ok(s) = s.score {
+                            prop_assert!(s.d2.is_finite() && usize::from(s.mode) < p.modes.len());
+                        }
+                        prop_assert_eq!(s.step.fault, s.score.is_err());
+                    }
+                }
+
+                /// Every single-bit flip of a bank blob is refused (by the header checks or the
+                /// CRC); resealed with a correct CRC, whatever still decodes is a bank the encoder
+                /// writes to the same bytes.
+                #[test]
+                fn every_bank_bit_flip_is_rejected(o in bank::<$n, $m>()) {
+                    let bytes = encode_bank(&o.params::<$n>());
+                    let body_end = bytes.len() - blob::CRC_LEN;
+                    for bit in 0..bytes.len() * 8 {
+                        let mut b = bytes.clone();
+                        b[bit / 8] ^= 1 << (bit % 8);
+                        prop_assert!(FlashBank::<$n, $m>::from_blob(&b).is_err(), "flip of bit {} accepted", bit);
+                        prop_assert!(Tracker::<$n, $m>::from_blob(&b).is_err());
+                        if bit / 8 >= blob::HEADER_LEN && bit / 8 < body_end {
+                            let crc = blob::checksum(&b[..body_end]);
+                            b[body_end..].copy_from_slice(&crc.to_le_bytes());
+                            if let Ok(fb) = FlashBank::<$n, $m>::from_blob(&b) {
+                                prop_assert_eq!(reencoded(&fb), b.clone());
+                            }
+                        }
+                    }
+                    for len in 0..bytes.len() {
+                        prop_assert!(FlashBank::<$n, $m>::from_blob(&bytes[..len]).is_err());
+                    }
+                }
+            }
+        }
+    )*};
+}
+
+bank_props!(
+    b1 = (1, 1, 16),
+    b1d = (1, 2, 16),
+    b3 = (3, 3, 12),
+    b3d = (3, 6, 8),
+    b8 = (8, 8, 4)
+);
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(64))]
+
+    /// A version 1 blob through the Tracker: FlashModel + AlarmMachine's d², verdict and
+    /// steps, bit for bit, on any valid model and readings.
+    #[test]
+    fn v1_through_the_tracker_is_flash_model_and_alarm_machine(
+        p in params::<5>(),
+        xs in proptest::collection::vec(proptest::array::uniform::<_, 5>(
+            prop_oneof![8 => -2.0e3f32..2.0e3, 1 => Just(f32::NAN), 1 => Just(-1.0f32)]), 1..60),
+    ) {
+        let bytes = encode(&p);
+        let fm = FlashModel::<5>::from_blob(&bytes).unwrap();
+        let mut am = AlarmMachine::new(fm.thresholds(), fm.policy());
+        let mut t = Tracker::<5, 5>::from_blob(&bytes).unwrap();
+        for x in &xs {
+            let want = fm.score(x);
+            let want_step = am.update(&want);
+            let got = t.step(x, None);
+            prop_assert_eq!(got.score.map(|s| (s.d2.to_bits(), s.verdict)), want.map(|s| (s.d2.to_bits(), s.verdict)));
+            prop_assert_eq!(got.step, want_step);
+        }
+    }
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(1000))]
+
+    /// Random bytes, and random bodies behind a version 2 header with a correct CRC: the bank
+    /// reader never panics, and whatever it accepts the encoder writes to the same bytes.
+    #[test]
+    fn random_bank_bodies_never_panic(body in proptest::collection::vec(any::<u8>(), 0..200), flags in 0u8..4, raw in proptest::collection::vec(any::<u8>(), 0..200)) {
+        prop_assert!(FlashBank::<2, 4>::from_blob(&raw).is_err());
+        let len = blob::HEADER_LEN + body.len() + blob::CRC_LEN;
+        let mut b = Vec::with_capacity(len);
+        b.extend_from_slice(&blob::MAGIC);
+        b.extend_from_slice(&[blob::VERSION_BANK, 1, flags, 0]);
+        b.extend_from_slice(&(len as u16).to_le_bytes());
+        b.extend_from_slice(&body);
+        let crc = blob::checksum(&b);
+        b.extend_from_slice(&crc.to_le_bytes());
+        if let Ok(fb) = FlashBank::<1, 1>::from_blob(&b) {
+            prop_assert_eq!(reencoded(&fb), b.clone());
+        }
+        if let Ok(fb) = FlashBank::<1, 2>::from_blob(&b) {
+            prop_assert_eq!(reencoded(&fb), b.clone());
+        }
+        if flags & blob::FLAG_FIXED != 0 {
+            prop_assert_eq!(FlashBank::<1, 1>::from_blob(&b).err(), Some(DecodeError::FixedBank));
+        }
+    }
+}
