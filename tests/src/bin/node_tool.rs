@@ -114,30 +114,6 @@ enum Cmd {
         #[arg(long)]
         unusable: Option<String>,
     },
-    /// Build a model bank (format version 2) of N = 5 raw features from single models (version 1
-    /// blobs of the same features, each the Gaussian of one mode), with a mode rule, a window
-    /// and drift: a fixture for the emulator run until the trainer writes banks itself.
-    BankBlob {
-        /// The single models, one per mode, in mode order (their card names the features).
-        #[arg(long = "mode-blob", required = true)]
-        mode_blobs: Vec<PathBuf>,
-        /// `nearest` or `known`.
-        #[arg(long, default_value = "nearest")]
-        select: String,
-        /// Readings averaged (1 to 16).
-        #[arg(long, default_value_t = 1)]
-        window: u8,
-        /// Drift on, with the centre's half-life in readings: rate 1 − 0.5^(1/h).
-        #[arg(long)]
-        drift_half_life: Option<f64>,
-        /// The drift bound per feature, in the feature's baseline standard deviations (the
-        /// first model's `1 / scale`).
-        #[arg(long, default_value_t = 3.0)]
-        drift_bound: f64,
-        /// The bank blob to write.
-        #[arg(long)]
-        out: PathBuf,
-    },
     /// Run the core's `Tracker` on a reading table (as `table` writes it, modes included) and
     /// write what the device must report, in the columns of `ellipsoid replay` for a bank.
     Track {
@@ -283,21 +259,6 @@ fn main() -> Result<()> {
             unusable.as_deref(),
         ),
         Cmd::NoModel { device } => no_model(&device),
-        Cmd::BankBlob {
-            mode_blobs,
-            select,
-            window,
-            drift_half_life,
-            drift_bound,
-            out,
-        } => bank_blob(
-            &mode_blobs,
-            &select,
-            window,
-            drift_half_life,
-            drift_bound,
-            &out,
-        ),
         Cmd::Track {
             model,
             table,
@@ -966,91 +927,6 @@ fn compare(
         "compare: slot {slot}: {} readings, d2 bit-identical on all {bits_equal} scored, {faults} faults, \
          {raised} alarms raised ({tops} with the same top feature){bank}, pin changes and final LED levels identical",
         rep.len()
-    );
-    Ok(())
-}
-
-fn bank_blob(
-    mode_blobs: &[PathBuf],
-    select: &str,
-    window: u8,
-    drift_half_life: Option<f64>,
-    drift_bound: f64,
-    out: &Path,
-) -> Result<()> {
-    use ellipsoid_core::bank::{BankParams, DriftSpec, ModeParams, ModeSelect};
-    use ellipsoid_core::{blob, window::WindowSpec};
-    let select = match select {
-        "nearest" => ModeSelect::Nearest,
-        "known" => ModeSelect::Known,
-        other => bail!("--select {other:?}: nearest or known"),
-    };
-    let mut singles = Vec::new();
-    for path in mode_blobs {
-        let bytes = fs::read(path).with_context(|| format!("reading {}", path.display()))?;
-        let p = blob::decode::<5>(&bytes)
-            .map_err(|e| anyhow!("{}: not a valid N = 5 blob: {e}", path.display()))?;
-        singles.push((path, bytes, p));
-    }
-    let (first_path, first_bytes, first) = &singles[0];
-    let card = ellipsoid_trainer::data::card::ModelCard::read_for(first_path, first_bytes)?;
-    for (path, _, p) in &singles[1..] {
-        ensure!(
-            p.preprocess.log_mask == first.preprocess.log_mask,
-            "{}: log-transforms other features than {}",
-            path.display(),
-            first_path.display()
-        );
-    }
-    let modes: Vec<ModeParams<5>> = singles
-        .iter()
-        .map(|(_, _, p)| ModeParams {
-            offset: p.preprocess.offset,
-            scale: p.preprocess.scale,
-            mean: p.mean,
-            w: p.w,
-            thresholds: p.thresholds,
-        })
-        .collect();
-    let drift = drift_half_life
-        .map(|h| -> Result<DriftSpec<5>> {
-            ensure!(h > 0.0, "--drift-half-life must be positive");
-            let rate = (1.0 - 0.5f64.powf(1.0 / h)) as f32;
-            let mut bound = [0.0f32; 5];
-            for (b, s) in bound.iter_mut().zip(first.preprocess.scale) {
-                *b = (drift_bound / f64::from(s)) as f32;
-            }
-            Ok(DriftSpec { rate, bound })
-        })
-        .transpose()?;
-    let bank = BankParams::<5, 5> {
-        meta: first.meta,
-        log_mask: first.preprocess.log_mask,
-        select,
-        modes: &modes,
-        window: WindowSpec {
-            length: window,
-            differences: false,
-        },
-        drift,
-        policy: first.policy,
-        names_digest: blob::names_digest(card.features.iter().map(String::as_str)),
-    };
-    let mut buf = vec![0u8; blob::max_bank_len(5, 5, modes.len(), drift.is_some())];
-    let len = blob::encode_bank(&bank, &mut buf)
-        .map_err(|e| anyhow!("the bank of {} modes cannot be encoded: {e:?}", modes.len()))?;
-    buf.truncate(len);
-    write_atomic(out, &buf)?;
-    println!(
-        "bank-blob: {} modes ({}), window {window}, drift {} -> {} ({len} bytes)",
-        modes.len(),
-        select.name(),
-        drift.map_or("off".to_string(), |d| format!(
-            "rate {} (half-life {} readings), bound {drift_bound} sd",
-            d.rate,
-            drift_half_life.unwrap_or(0.0)
-        )),
-        out.display()
     );
     Ok(())
 }
