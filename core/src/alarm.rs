@@ -65,11 +65,17 @@ pub enum EventKind {
     Fault(FaultCause),
     /// The fault line went off: a reading was scored again.
     FaultCleared,
+    /// The drift shift of a model bank reached its bound on this feature, the first time since
+    /// the model was loaded (see [`crate::track`]). Not an alarm: the alarm line does not change.
+    Drift {
+        /// The first feature (index into the scored vector) at its bound.
+        feature: u8,
+    },
 }
 
 impl EventKind {
     /// The event's name in reports, the device's log and the host's replay alike:
-    /// `raised`, `cleared`, `reset`, `fault`, `fault-cleared`.
+    /// `raised`, `cleared`, `reset`, `fault`, `fault-cleared`, `drift`.
     pub const fn name(&self) -> &'static str {
         match self {
             EventKind::Raised => "raised",
@@ -77,6 +83,7 @@ impl EventKind {
             EventKind::Reset => "reset",
             EventKind::Fault(_) => "fault",
             EventKind::FaultCleared => "fault-cleared",
+            EventKind::Drift { .. } => "drift",
         }
     }
 }
@@ -91,7 +98,9 @@ pub struct Event {
     pub kind: EventKind,
 }
 
-/// Up to two events can happen on one reading (a fault clears and the alarm rises).
+/// Up to two events can happen on one reading (a fault clears and the alarm rises; or, in a model
+/// bank, a fault clears and the drift reaches its bound: drift moves only on a reading that finds
+/// and leaves the alarm quiet, so it never meets `Raised` or `Cleared` on one reading).
 pub type Events = heapless::Vec<Event, 2>;
 
 /// The logical levels after a reading, and what changed.
@@ -103,6 +112,16 @@ pub struct Step {
     pub fault: bool,
     /// Events on this reading, in the order they happened.
     pub events: Events,
+}
+
+/// What the alarm machine needs to know about a scored reading: the two comparisons of its d²
+/// against the thresholds of the model (or, in a bank, of the mode) that scored it.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Judgement {
+    /// `d² > alarm`.
+    pub above: bool,
+    /// `d² < clear`.
+    pub below: bool,
 }
 
 /// The alarm state machine. See the module docs for the transition table.
@@ -182,8 +201,25 @@ impl AlarmMachine {
         }
     }
 
-    /// Feed one reading's score (the result of [`crate::Model::score`]).
+    /// Feed one reading's score (the result of [`crate::Model::score`]), judged against this
+    /// machine's own thresholds. The same table as [`Self::update_judged`], which it calls.
     pub fn update(&mut self, score: &Result<Scored, ReadingFault>) -> Step {
+        let judged = match score {
+            Err(fault) => Err(*fault),
+            // A `Scored` is plain data; one built by hand with a NaN or infinite d² is not a score.
+            Ok(s) if !s.d2.is_finite() => Err(ReadingFault::Overflow),
+            Ok(s) => Ok(Judgement {
+                above: s.d2 > self.thresholds.alarm,
+                below: s.d2 < self.thresholds.clear,
+            }),
+        };
+        self.update_judged(judged)
+    }
+
+    /// Feed one reading already judged against its thresholds (a model bank judges each reading
+    /// against the limits of the mode that scored it), or the fault that kept it from being
+    /// scored. The thresholds given to [`Self::new`] are not used here.
+    pub fn update_judged(&mut self, judged: Result<Judgement, ReadingFault>) -> Step {
         let index = self.next_index;
         self.next_index = self.next_index.wrapping_add(1);
         let mut events = Events::new();
@@ -197,9 +233,9 @@ impl AlarmMachine {
             }
             return self.levels(events);
         }
-        match score {
+        match judged {
             Err(fault) => {
-                let cause = FaultCause::Reading(*fault);
+                let cause = FaultCause::Reading(fault);
                 if self.fault != Some(cause) {
                     push(EventKind::Fault(cause));
                 }
@@ -207,22 +243,10 @@ impl AlarmMachine {
                 self.above_run = 0;
                 self.below_run = 0;
             }
-            // A `Scored` is plain data; one built by hand with a NaN or infinite d² is not a score.
-            Ok(s) if !s.d2.is_finite() => {
-                let cause = FaultCause::Reading(ReadingFault::Overflow);
-                if self.fault != Some(cause) {
-                    push(EventKind::Fault(cause));
-                }
-                self.fault = Some(cause);
-                self.above_run = 0;
-                self.below_run = 0;
-            }
-            Ok(s) => {
+            Ok(Judgement { above, below }) => {
                 if self.fault.take().is_some() {
                     push(EventKind::FaultCleared);
                 }
-                let above = s.d2 > self.thresholds.alarm;
-                let below = s.d2 < self.thresholds.clear;
                 match self.status {
                     Status::Quiet if above => {
                         self.above_run = self.above_run.saturating_add(1);

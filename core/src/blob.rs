@@ -27,8 +27,11 @@ use crate::params::{
 
 /// The four bytes a blob starts with.
 pub const MAGIC: [u8; 4] = *b"ELSD";
-/// The format version this crate writes and reads.
+/// The format version of a single model (read by [`decode`], [`crate::Model::from_blob`],
+/// [`crate::FlashModel::from_blob`] and the fixed-point reader).
 pub const VERSION: u8 = 1;
+/// The format version of a model bank ([`encode_bank`], [`crate::bank::FlashBank::from_blob`]).
+pub const VERSION_BANK: u8 = 2;
 /// Bytes before the body.
 pub const HEADER_LEN: usize = 10;
 /// Bytes of the trailing CRC.
@@ -79,7 +82,7 @@ impl Header {
         if [m0, m1, m2, m3] != MAGIC {
             return Err(DecodeError::Magic);
         }
-        if version != VERSION {
+        if version != VERSION && version != VERSION_BANK {
             return Err(DecodeError::Version { found: version });
         }
         if flags & !(FLAG_LATCH | FLAG_FIXED) != 0 {
@@ -180,6 +183,12 @@ pub enum DecodeError {
     },
     /// The fixed-point blob decoded, but its model breaks a rule.
     Fixed(crate::fixed::FixedError),
+    /// A version 2 blob (a model bank) with the fixed-point flag: the fixed-point path has no
+    /// bank.
+    FixedBank,
+    /// The bank blob's bytes decoded, but the bank breaks a rule (or does not fit the `N` and `M`
+    /// the caller was built for).
+    Bank(crate::bank::BankError),
 }
 
 impl fmt::Display for DecodeError {
@@ -189,8 +198,12 @@ impl fmt::Display for DecodeError {
                 write!(f, "{len} bytes is shorter than a blob header")
             }
             DecodeError::Magic => f.write_str("not a model blob (bad magic)"),
+            DecodeError::Version { found: VERSION_BANK } => f.write_str(
+                "blob format version 2 holds a model bank: read it with the bank reader \
+                 (bank::FlashBank or track::Tracker), not as a single model",
+            ),
             DecodeError::Version { found } => {
-                write!(f, "blob format version {found} is not supported (this build reads {VERSION})")
+                write!(f, "blob format version {found} is not supported (this build reads {VERSION} and {VERSION_BANK})")
             }
             DecodeError::UnsupportedDimension { found, requested } => {
                 if usize::from(*found) == *requested {
@@ -231,6 +244,10 @@ impl fmt::Display for DecodeError {
                 f.write_str("blob holds an f32 model; this build scores fixed-point models")
             }
             DecodeError::Fixed(e) => write!(f, "blob holds an invalid fixed-point model: {e}"),
+            DecodeError::FixedBank => f.write_str(
+                "a version 2 blob (a model bank) cannot be fixed-point: the fixed-point path has no bank",
+            ),
+            DecodeError::Bank(e) => write!(f, "blob holds an invalid model bank: {e}"),
         }
     }
 }
@@ -239,6 +256,7 @@ impl core::error::Error for DecodeError {
     fn source(&self) -> Option<&(dyn core::error::Error + 'static)> {
         match self {
             DecodeError::Invalid(e) => Some(e),
+            DecodeError::Bank(e) => Some(e),
             _ => None,
         }
     }
@@ -263,6 +281,8 @@ pub enum EncodeError {
     Invalid(ModelError),
     /// The fixed-point parameters break a rule.
     InvalidFixed(crate::fixed::FixedError),
+    /// The bank's parameters break a rule, so no device would accept them.
+    InvalidBank(crate::bank::BankError),
 }
 
 impl fmt::Display for EncodeError {
@@ -275,6 +295,7 @@ impl fmt::Display for EncodeError {
             EncodeError::InvalidFixed(e) => {
                 write!(f, "cannot encode an invalid fixed-point model: {e}")
             }
+            EncodeError::InvalidBank(e) => write!(f, "cannot encode an invalid model bank: {e}"),
         }
     }
 }
@@ -305,6 +326,11 @@ impl<'a> Writer<'a> {
 
     /// Write the header in front of the body written so far and the CRC after it.
     pub(crate) fn seal(self, n: u8, flags: u8) -> Result<usize, EncodeError> {
+        self.seal_as(VERSION, n, flags)
+    }
+
+    /// [`Self::seal`] with the given version byte.
+    pub(crate) fn seal_as(self, version: u8, n: u8, flags: u8) -> Result<usize, EncodeError> {
         let capacity = self.buf.len();
         let too_small = EncodeError::BufferTooSmall { capacity };
         let body_end = self.pos;
@@ -313,7 +339,7 @@ impl<'a> Writer<'a> {
         let buf = self.buf;
         let [l0, l1] = len16.to_le_bytes();
         let head = [
-            MAGIC[0], MAGIC[1], MAGIC[2], MAGIC[3], VERSION, n, flags, 0, l0, l1,
+            MAGIC[0], MAGIC[1], MAGIC[2], MAGIC[3], version, n, flags, 0, l0, l1,
         ];
         buf.get_mut(..HEADER_LEN)
             .ok_or(too_small)?
@@ -338,7 +364,7 @@ impl<'a> Writer<'a> {
         Ok(())
     }
 
-    fn put_all(&mut self, values: &[f32]) -> Result<(), EncodeError> {
+    pub(crate) fn put_all(&mut self, values: &[f32]) -> Result<(), EncodeError> {
         values.iter().try_for_each(|v| self.put(v))
     }
 }
@@ -380,7 +406,18 @@ pub(crate) struct Reader<'a> {
     offset: usize,
 }
 
-impl Reader<'_> {
+impl<'a> Reader<'a> {
+    /// The next `len` bytes, in place.
+    pub(crate) fn slice(&mut self, len: usize) -> Result<&'a [u8], DecodeError> {
+        if self.rest.len() < len {
+            return Err(DecodeError::Body);
+        }
+        let (head, rest) = self.rest.split_at(len);
+        self.rest = rest;
+        self.offset += len;
+        Ok(head)
+    }
+
     fn take<T: DeserializeOwned>(&mut self) -> Result<(T, &[u8]), DecodeError> {
         let before = self.rest;
         let (value, rest) = postcard::take_from_bytes(before).map_err(|_| DecodeError::Body)?;
@@ -431,8 +468,24 @@ pub(crate) fn open<const N: usize>(
     bytes: &[u8],
     fixed: bool,
 ) -> Result<(u8, Reader<'_>), DecodeError> {
+    open_as::<N>(bytes, fixed, VERSION)
+}
+
+/// [`open`] for a blob of the given format version (any other is refused as
+/// [`DecodeError::Version`], right after the header's own checks).
+pub(crate) fn open_as<const N: usize>(
+    bytes: &[u8],
+    fixed: bool,
+    version: u8,
+) -> Result<(u8, Reader<'_>), DecodeError> {
     let h = Header::parse(bytes)?;
+    if h.version != version {
+        return Err(DecodeError::Version { found: h.version });
+    }
     let is_fixed = h.flags & FLAG_FIXED != 0;
+    if version == VERSION_BANK && is_fixed {
+        return Err(DecodeError::FixedBank);
+    }
     if is_fixed != fixed {
         return Err(DecodeError::Arithmetic { fixed: is_fixed });
     }
@@ -561,6 +614,139 @@ pub fn decode<const N: usize>(bytes: &[u8]) -> Result<ModelParams<N>, DecodeErro
     };
     params.validate()?;
     Ok(params)
+}
+
+/// The digest of a model's ordered raw feature names that a version 2 blob carries: the
+/// CRC-32/ISO-HDLC (the CRC of the blob itself) of the names in column order, each as its UTF-8
+/// bytes followed by one `0x0A` byte. The host compares it with its input's columns, so that a
+/// bank is never scored on columns in another order.
+pub fn names_digest<'n>(names: impl IntoIterator<Item = &'n str>) -> u32 {
+    let mut digest = CRC.digest();
+    for name in names {
+        digest.update(name.as_bytes());
+        digest.update(b"\n");
+    }
+    digest.finalize()
+}
+
+/// The largest version 2 blob of `k` modes, `n` raw and `m` scored features, with or without
+/// drift (varints at their longest).
+pub const fn max_bank_len(n: usize, m: usize, k: usize, drift: bool) -> usize {
+    let _ = n;
+    // model_id, trained_at, sequence, log_mask (25) + names_digest (4) + select, K, w,
+    // options (4) + per mode the floats of a v1 model of m features + drift rate and bounds
+    // + raise_after, clear_after (6).
+    let drift_len = if drift { 4 * (m + 1) } else { 0 };
+    HEADER_LEN + 25 + 4 + 4 + k * floats_len(m) + drift_len + 6 + CRC_LEN
+}
+
+/// Option bit of a version 2 body: the first differences are scored.
+pub const OPTION_DIFFERENCES: u8 = 0b01;
+/// Option bit of a version 2 body: drift is on (its rate and bounds follow the modes).
+pub const OPTION_DRIFT: u8 = 0b10;
+
+/// Encode a validated model bank into `buf` as a version 2 blob; returns its length.
+///
+/// The rules are the decoder's ([`crate::bank::FlashBank::from_blob`]), checked in the same
+/// order with the same errors, so a blob this writes is one every reader of `N`, `M` accepts.
+pub fn encode_bank<const N: usize, const M: usize>(
+    p: &crate::bank::BankParams<'_, N, M>,
+    buf: &mut [u8],
+) -> Result<usize, EncodeError> {
+    p.validate().map_err(EncodeError::InvalidBank)?;
+    let mut w = Writer::new(buf, HEADER_LEN);
+    w.put(&p.meta.model_id)?;
+    w.put(&p.meta.trained_at)?;
+    w.put(&p.meta.sequence)?;
+    w.put(&p.log_mask)?;
+    w.bytes(&p.names_digest.to_le_bytes())?;
+    let options = if p.window.differences {
+        OPTION_DIFFERENCES
+    } else {
+        0
+    } | if p.drift.is_some() { OPTION_DRIFT } else { 0 };
+    w.bytes(&[
+        p.select.code(),
+        p.modes.len() as u8,
+        p.window.length,
+        options,
+    ])?;
+    for mode in p.modes {
+        w.put_all(&mode.offset)?;
+        w.put_all(&mode.scale)?;
+        w.put_all(&mode.mean)?;
+        for (i, row) in mode.w.iter().enumerate() {
+            w.put_all(row.get(..=i).unwrap_or(row))?;
+        }
+        w.put(&mode.thresholds.alarm)?;
+        w.put(&mode.thresholds.clear)?;
+    }
+    if let Some(d) = &p.drift {
+        w.put(&d.rate)?;
+        w.put_all(&d.bound)?;
+    }
+    w.put(&p.policy.raise_after)?;
+    w.put(&p.policy.clear_after)?;
+    let flags = if p.policy.latch { FLAG_LATCH } else { 0 };
+    w.seal_as(VERSION_BANK, N as u8, flags)
+}
+
+/// A version 2 blob whose header, CRC, varints and layout (shape, `K`, window, option bits) have
+/// been checked: its fields, the modes' floats and the drift floats still as bytes. The bank's
+/// rules are not yet checked.
+pub(crate) struct BankBody<'a> {
+    pub(crate) meta: ModelMeta,
+    pub(crate) log_mask: u32,
+    pub(crate) names_digest: u32,
+    pub(crate) select: crate::bank::ModeSelect,
+    pub(crate) k: u8,
+    pub(crate) window: crate::window::WindowSpec,
+    /// `K · floats_len(M)` bytes: per mode the floats of a v1 model of `M` features.
+    pub(crate) modes: &'a [u8],
+    /// Empty, or `4 (M + 1)` bytes: the drift rate and the `M` bounds.
+    pub(crate) drift: &'a [u8],
+    pub(crate) policy: AlarmPolicy,
+}
+
+/// Everything of a version 2 decode but the floats' values and the bank's rules, in FORMAT.md's
+/// order.
+pub(crate) fn read_bank_body<const N: usize, const M: usize>(
+    bytes: &[u8],
+) -> Result<BankBody<'_>, DecodeError> {
+    let (flags, mut r) = open_as::<N>(bytes, false, VERSION_BANK)?;
+    let meta = ModelMeta {
+        model_id: r.varint()?,
+        trained_at: r.varint()?,
+        sequence: r.varint()?,
+    };
+    let log_mask = r.varint()?;
+    let names_digest = u32::from_le_bytes(r.array::<4>()?);
+    let [select, k, length, options] = r.array::<4>()?;
+    let layout = crate::bank::check_layout::<N, M>(select, k, length, options, log_mask)
+        .map_err(DecodeError::Bank)?;
+    let modes = r.slice(usize::from(k) * floats_len(M))?;
+    let drift = if options & OPTION_DRIFT != 0 {
+        r.slice(4 * (M + 1))?
+    } else {
+        &[]
+    };
+    let policy = AlarmPolicy {
+        raise_after: r.varint()?,
+        clear_after: r.varint()?,
+        latch: flags & FLAG_LATCH != 0,
+    };
+    r.finish()?;
+    Ok(BankBody {
+        meta,
+        log_mask,
+        names_digest,
+        select: layout.0,
+        k,
+        window: layout.1,
+        modes,
+        drift,
+        policy,
+    })
 }
 
 impl<const N: usize> Model<N> {

@@ -40,18 +40,45 @@ pub const fn tri(n: usize) -> usize {
 
 /// The blob's floats, read in place: `offset`, `scale`, `mean` (`N` each), `W`'s lower triangle
 /// row by row, the two thresholds (see FORMAT.md).
+/// A model bank's mode (`crate::bank`) is the same block of floats, with `N` the scored length.
 #[derive(Clone, Copy)]
-struct Floats<'a, const N: usize> {
-    bytes: &'a [u8],
-    log_mask: u32,
-    policy: AlarmPolicy,
+pub(crate) struct Floats<'a, const N: usize> {
+    pub(crate) bytes: &'a [u8],
+    pub(crate) log_mask: u32,
+    pub(crate) policy: AlarmPolicy,
 }
 
 impl<const N: usize> Floats<'_, N> {
-    const SCALE: usize = N;
-    const MEAN: usize = 2 * N;
-    const W: usize = 3 * N;
-    const THRESHOLDS: usize = 3 * N + tri(N);
+    pub(crate) const SCALE: usize = N;
+    pub(crate) const MEAN: usize = 2 * N;
+    pub(crate) const W: usize = 3 * N;
+    pub(crate) const THRESHOLDS: usize = 3 * N + tri(N);
+}
+
+/// What a row would read past the end of a short slice: NaN, so that d² would be NaN and the
+/// reading a fault, never "normal". No model reaches it: `from_blob` checked the length.
+struct NanBytes<const N: usize>;
+
+impl<const N: usize> NanBytes<N> {
+    const BYTES: [[u8; 4]; N] = [f32::NAN.to_le_bytes(); N];
+}
+
+/// Row `i` of `V = W · diag(scale)` from a block of floats in place (see [`Floats`]): the one
+/// definition of a row read from flash, for [`FlashModel`] and each mode of a bank.
+#[inline(always)]
+pub(crate) fn flash_row<const N: usize>(floats: &[u8], i: usize) -> impl Iterator<Item = f32> + '_ {
+    // Slices of the row's own length (not fixed windows as in RAM): the compiler keeps this
+    // loop rolled, which is smaller in flash and, with the fold's extra load and multiply,
+    // no slower at N = 8.
+    let nan: &[[u8; 4]] = &NanBytes::<N>::BYTES;
+    let start = 4 * (Floats::<N>::W + tri(i));
+    let w = floats.get(start..start + 4 * (i + 1));
+    let s = floats.get(4 * Floats::<N>::SCALE..4 * Floats::<N>::MEAN);
+    let w = w.map_or(nan, |w| w.as_chunks::<4>().0);
+    let s = s.map_or(nan, |s| s.as_chunks::<4>().0);
+    w.iter()
+        .zip(s)
+        .map(|(w, s)| fold_factor(f32::from_le_bytes(*w), f32::from_le_bytes(*s)))
 }
 
 impl<const N: usize> ParamSource<N> for Floats<'_, N> {
@@ -219,27 +246,8 @@ impl<const N: usize> Folded<N> for FlashModel<'_, N> {
 
     #[inline(always)]
     fn row(&self, i: usize) -> impl Iterator<Item = f32> + '_ {
-        // Slices of the row's own length (not fixed windows as in RAM): the compiler keeps this
-        // loop rolled, which is smaller in flash and, with the fold's extra load and multiply,
-        // no slower at N = 8.
-        let nan: &[[u8; 4]] = &Self::NAN_BYTES;
-        let start = 4 * (Floats::<N>::W + tri(i));
-        let w = self.floats.get(start..start + 4 * (i + 1));
-        let s = self
-            .floats
-            .get(4 * Floats::<N>::SCALE..4 * Floats::<N>::MEAN);
-        let w = w.map_or(nan, |w| w.as_chunks::<4>().0);
-        let s = s.map_or(nan, |s| s.as_chunks::<4>().0);
-        w.iter()
-            .zip(s)
-            .map(|(w, s)| fold_factor(f32::from_le_bytes(*w), f32::from_le_bytes(*s)))
+        flash_row::<N>(self.floats, i)
     }
-}
-
-impl<const N: usize> FlashModel<'_, N> {
-    /// What a row would read past the end of a short slice: NaN, so that d² would be NaN and the
-    /// reading a fault, never "normal". No model reaches it: `from_blob` checked the length.
-    const NAN_BYTES: [[u8; 4]; N] = [f32::NAN.to_le_bytes(); N];
 }
 
 /// The folded form alone, in RAM: the centre and `V = W · diag(scale)` packed row by row.

@@ -69,13 +69,19 @@
 #![deny(missing_docs)]
 
 pub mod alarm;
+pub mod bank;
 pub mod blob;
 pub mod fixed;
 pub mod flash;
 pub mod model;
 pub mod params;
+pub mod track;
+pub mod window;
 
-pub use alarm::{AlarmMachine, Event, EventKind, FaultCause, Status, Step};
+pub use alarm::{AlarmMachine, Event, EventKind, FaultCause, Judgement, Status, Step};
+pub use bank::{
+    BankError, BankParams, BankScore, DriftSpec, FlashBank, ModeParams, ModeSelect, MAX_MODES,
+};
 pub use blob::{DecodeError, EncodeError};
 pub use fixed::{FixedModel, FixedParams};
 pub use flash::{tri, CompactModel, FlashModel};
@@ -84,6 +90,8 @@ pub use params::{
     AlarmPolicy, Field, ModelError, ModelMeta, ModelParams, Preprocess, Thresholds, MAX_FEATURES,
     MAX_RUN,
 };
+pub use track::{TrackStep, Tracker};
+pub use window::{Window, WindowError, WindowSpec, MAX_WINDOW};
 
 #[cfg(test)]
 mod tests {

@@ -61,6 +61,19 @@ pub enum ReadingFault {
     /// its split into per-feature contributions does not fit in `f32`: contributions beyond the
     /// range of `f32` cancel to a d² inside it.
     ContributionOverflow,
+    /// Only from a model bank with a reading window ([`crate::track::Tracker`]): the window is
+    /// not yet whole (after boot, a bad reading or a change of known mode), so there is nothing
+    /// to score yet.
+    WindowFilling {
+        /// Good readings still needed before the next one is scored.
+        missing: u8,
+    },
+    /// Only from a known-mode bank: the reading came without a mode, or with a mode the bank
+    /// does not have.
+    UnknownMode {
+        /// The mode given (`None`: no mode).
+        given: Option<u8>,
+    },
 }
 
 impl fmt::Display for ReadingFault {
@@ -77,6 +90,16 @@ impl fmt::Display for ReadingFault {
             ReadingFault::ContributionOverflow => f.write_str(
                 "the per-feature contributions to a finite d² overflow f32 (the score stands)",
             ),
+            ReadingFault::WindowFilling { missing } => write!(
+                f,
+                "the reading window is not whole yet: {missing} more good reading(s) needed"
+            ),
+            ReadingFault::UnknownMode { given: None } => {
+                f.write_str("the reading came without the operating mode the bank needs")
+            }
+            ReadingFault::UnknownMode { given: Some(k) } => {
+                write!(f, "operating mode {k} is not one of the bank's modes")
+            }
         }
     }
 }
@@ -254,7 +277,7 @@ pub(crate) trait Folded<const N: usize> {
 
 /// `d = t(x) − c`. Without log features this is a plain subtraction.
 #[inline(always)]
-fn deviation<const N: usize>(
+pub(crate) fn deviation<const N: usize>(
     mask: u32,
     center: &[f32; N],
     x: &[f32; N],
@@ -296,7 +319,7 @@ fn row_dot<const N: usize>(row: impl Iterator<Item = f32>, d: &[f32; N], i: usiz
 /// `d² = ‖V d‖²`, without keeping `z`: `z₀² + z₁² + …`, summed in row order. Same operations,
 /// in the same order, as [`project`], so the two agree to the bit.
 #[inline(always)]
-fn distance<const N: usize, F: Folded<N>>(f: &F, d: &[f32; N]) -> f32 {
+pub(crate) fn distance<const N: usize, F: Folded<N>>(f: &F, d: &[f32; N]) -> f32 {
     let mut zs = (0..N).map(|i| row_dot(f.row(i), d, i));
     let z0 = zs.next().unwrap_or(0.0);
     zs.fold(z0 * z0, |acc, z| acc + z * z)
@@ -304,7 +327,7 @@ fn distance<const N: usize, F: Folded<N>>(f: &F, d: &[f32; N]) -> f32 {
 
 /// `z = V d` and `d² = ‖z‖²`, with the operations of [`distance`].
 #[inline(always)]
-fn project<const N: usize, F: Folded<N>>(f: &F, d: &[f32; N]) -> ([f32; N], f32) {
+pub(crate) fn project<const N: usize, F: Folded<N>>(f: &F, d: &[f32; N]) -> ([f32; N], f32) {
     let mut zs = [0.0f32; N];
     for (i, zi) in zs.iter_mut().enumerate() {
         *zi = row_dot(f.row(i), d, i);
@@ -355,6 +378,20 @@ pub(crate) fn explain<const N: usize, F: Folded<N>>(
     let d = deviation(f.log_mask(), f.center(), x)?;
     let (z, d2) = project(f, &d);
     let score = judge(f.alarm(), x, d2)?;
+    let contributions = split(f, &d, &z)?;
+    Ok(Explained {
+        score,
+        contributions,
+    })
+}
+
+/// The per-feature contributions `cⱼ = dⱼ (Vᵀ z)ⱼ` of the deviation `d` and its `z = V d` (see
+/// [`Model::explain`]).
+pub(crate) fn split<const N: usize, F: Folded<N>>(
+    f: &F,
+    d: &[f32; N],
+    z: &[f32; N],
+) -> Result<[f32; N], ReadingFault> {
     // `backⱼ = Σᵢ Vᵢⱼ zᵢ` over the lower triangle. (The square `V` of [`Model`] once added its
     // zeros above the diagonal too; adding `±0` to a sum that starts at `+0` changes no bit.)
     let mut back = [0.0f64; N];
@@ -364,16 +401,13 @@ pub(crate) fn explain<const N: usize, F: Folded<N>>(
         }
     }
     let mut contributions = [0.0f32; N];
-    for ((c, dj), bj) in contributions.iter_mut().zip(&d).zip(&back) {
+    for ((c, dj), bj) in contributions.iter_mut().zip(d).zip(&back) {
         *c = (f64::from(*dj) * bj) as f32;
         if !c.is_finite() {
             return Err(ReadingFault::ContributionOverflow);
         }
     }
-    Ok(Explained {
-        score,
-        contributions,
-    })
+    Ok(contributions)
 }
 
 /// The log-density (see [`Model::log_density`]), with `ln_norm = Σ ln Vᵢᵢ − N/2 ln 2π`.

@@ -30,7 +30,11 @@ use std::path::Path;
 use anyhow::{bail, ensure, Context, Result};
 use serde::Serialize;
 
+use ellipsoid_core::window::{Window, WindowSpec};
+use ellipsoid_core::ReadingFault;
+
 use crate::data::ingest::{self, CsvOptions, Layout, Reader};
+use crate::device::replay::to_device;
 use crate::fit::memory::{fit_rows, Table};
 use crate::fit::mixture::{choose_modes, fit_mixture, Mixture, MixtureOptions};
 use crate::pipeline::train::{train_with, TrainSpec, Trained};
@@ -177,6 +181,69 @@ impl BankSpec {
     }
 }
 
+/// Run `$body` with `$N` and `$M` bound as `const usize`: `$N = $n`, and `$M = $N`, or `2 $N`
+/// when `$diff` (the shapes a bank can have). `None` outside them.
+macro_rules! with_shape {
+    ($n:expr, $diff:expr, $N:ident, $M:ident => $body:block) => {{
+        macro_rules! arm {
+            ($v:literal) => {{
+                const $N: usize = $v;
+                if $diff {
+                    if 2 * $v <= ellipsoid_core::MAX_FEATURES {
+                        const $M: usize = if 2 * $v <= ellipsoid_core::MAX_FEATURES {
+                            2 * $v
+                        } else {
+                            $v
+                        };
+                        Some($body)
+                    } else {
+                        None
+                    }
+                } else {
+                    const $M: usize = $v;
+                    Some($body)
+                }
+            }};
+        }
+        match $n {
+            1 => arm!(1),
+            2 => arm!(2),
+            3 => arm!(3),
+            4 => arm!(4),
+            5 => arm!(5),
+            6 => arm!(6),
+            7 => arm!(7),
+            8 => arm!(8),
+            9 => arm!(9),
+            10 => arm!(10),
+            11 => arm!(11),
+            12 => arm!(12),
+            13 => arm!(13),
+            14 => arm!(14),
+            15 => arm!(15),
+            16 => arm!(16),
+            17 => arm!(17),
+            18 => arm!(18),
+            19 => arm!(19),
+            20 => arm!(20),
+            21 => arm!(21),
+            22 => arm!(22),
+            23 => arm!(23),
+            24 => arm!(24),
+            25 => arm!(25),
+            26 => arm!(26),
+            27 => arm!(27),
+            28 => arm!(28),
+            29 => arm!(29),
+            30 => arm!(30),
+            31 => arm!(31),
+            32 => arm!(32),
+            _ => None,
+        }
+    }};
+}
+pub(crate) use with_shape;
+
 /// The baseline rows in file order.
 #[derive(Clone, Debug)]
 pub struct RawRows {
@@ -320,7 +387,6 @@ pub fn window_samples(raw: &RawRows, window: u8, differences: bool) -> Result<Sa
             filling: 0,
         });
     }
-    let need = if differences { w.max(2) } else { w };
     let m = names.len();
     let mut s = Samples {
         names,
@@ -329,34 +395,41 @@ pub fn window_samples(raw: &RawRows, window: u8, differences: bool) -> Result<Sa
         modes: Vec::new(),
         filling: 0,
     };
-    let rows: Vec<&[f64]> = raw.values.chunks_exact(n).collect();
-    let mut count = 0usize;
-    let mut y = vec![0.0f64; m];
-    for (r, x) in rows.iter().enumerate() {
-        let restart = r == 0
-            || raw.lines[r] != raw.lines[r - 1] + 1
-            || (!raw.modes.is_empty() && raw.modes[r] != raw.modes[r - 1]);
-        count = if restart { 1 } else { count + 1 };
-        if count < need {
-            s.filling += 1;
-            continue;
-        }
-        for i in 0..n {
-            let mut sum = 0.0f32;
-            for back in (0..w).rev() {
-                sum += rows[r - back][i] as f32;
+    let spec = WindowSpec {
+        length: window,
+        differences,
+    };
+    // The core's own window, so that the samples are the device's bits. Bad readings were
+    // refused before (a baseline is complete), so its only faults here are "filling".
+    with_shape!(n, differences, N, M => {
+        let mut win = Window::<N, M>::new(spec, 0)
+            .map_err(|e| anyhow::anyhow!("{}: the window cannot be built: {e}", raw.file))?;
+        let mut x = [0f32; N];
+        for (r, row) in raw.values.chunks_exact(n).enumerate() {
+            let restart = r > 0
+                && (raw.lines[r] != raw.lines[r - 1] + 1
+                    || (!raw.modes.is_empty() && raw.modes[r] != raw.modes[r - 1]));
+            if restart {
+                win.restart();
             }
-            y[i] = f64::from(sum / window as f32);
-            if differences {
-                y[n + i] = f64::from(x[i] as f32 - rows[r - 1][i] as f32);
+            for (xi, v) in x.iter_mut().zip(row) {
+                *xi = to_device(*v);
+            }
+            match win.push(&x) {
+                Ok(y) => {
+                    s.values.extend(y.iter().map(|v| f64::from(*v)));
+                    s.lines.push(raw.lines[r]);
+                    if !raw.modes.is_empty() {
+                        s.modes.push(raw.modes[r]);
+                    }
+                }
+                Err(ReadingFault::WindowFilling { .. }) => s.filling += 1,
+                Err(e) => bail!("{}: line {}: {e}", raw.file, raw.lines[r]),
             }
         }
-        s.values.extend_from_slice(&y);
-        s.lines.push(raw.lines[r]);
-        if !raw.modes.is_empty() {
-            s.modes.push(raw.modes[r]);
-        }
-    }
+        Ok::<(), anyhow::Error>(())
+    })
+    .ok_or_else(|| anyhow::anyhow!("{}: {n} features and {m} scored values: no bank has that shape (at most {} scored values)", raw.file, ellipsoid_core::MAX_FEATURES))??;
     Ok(s)
 }
 
@@ -656,6 +729,7 @@ pub fn fit_bank(a: &TrainSpec, b: &BankSpec) -> Result<BankFit> {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use ellipsoid_core::AlarmPolicy;
 
     fn raw(values: Vec<f64>, n: usize, modes: Vec<u8>) -> RawRows {
         let rows = values.len() / n;
@@ -694,6 +768,176 @@ mod tests {
         let s = window_samples(&g, 2, false).unwrap();
         assert_eq!(s.lines, [3, 6]);
         assert_eq!(s.values, [1.5, 3.5]);
+    }
+
+    use crate::fit::Shrinkage;
+    use crate::pipeline::limits::LimitSpec;
+    use rand::SeedableRng;
+    use rand_chacha::ChaCha8Rng;
+    use rand_distr::{Distribution, StandardNormal};
+
+    /// Two duty points; the noise of each feature is AR(1) with `φ = 0.6`, the two features
+    /// correlated 0.5: autocorrelated readings, made more so by the window.
+    fn readings(rng: &mut ChaCha8Rng, blocks: usize, block: usize) -> (Vec<[f64; 2]>, Vec<u8>) {
+        let centres = [[10.0, 5.0], [16.0, 2.0]];
+        let sd = [[1.0, 0.5], [0.6, 0.8]];
+        let phi: f64 = 0.6;
+        let (mut e, mut rows, mut modes) = ([0.0f64; 2], Vec::new(), Vec::new());
+        for b in 0..blocks {
+            let md = b % 2;
+            for _ in 0..block {
+                let a: f64 = StandardNormal.sample(rng);
+                let c: f64 = StandardNormal.sample(rng);
+                let innov = [a, 0.5 * a + 0.75f64.sqrt() * c];
+                for i in 0..2 {
+                    e[i] = phi * e[i] + (1.0 - phi * phi).sqrt() * innov[i];
+                }
+                rows.push([
+                    centres[md][0] + sd[md][0] * e[0],
+                    centres[md][1] + sd[md][1] * e[1],
+                ]);
+                modes.push(md as u8);
+            }
+        }
+        (rows, modes)
+    }
+
+    fn spec(path: &Path, alpha: f64) -> TrainSpec {
+        TrainSpec {
+            no_fpu: false,
+            baseline: path.to_path_buf(),
+            csv: CsvOptions {
+                quiet: true,
+                ..CsvOptions::default()
+            },
+            log_columns: Vec::new(),
+            shrinkage: Shrinkage::None,
+            robust: false,
+            holdout: 0.2,
+            threshold: Method::Hotelling,
+            alarms_per_day: 1.0,
+            rate_hz: 1.0,
+            alpha: Some(alpha),
+            validation: None,
+            label_column: "label".into(),
+            policy: AlarmPolicy {
+                raise_after: 3,
+                clear_after: 10,
+                latch: false,
+            },
+            clear_fraction: 0.75,
+            model_id: None,
+            sequence: 1,
+            trained_at: Some(0),
+            threads: Some(1),
+            limits: LimitSpec {
+                sims: Some(200),
+                ..LimitSpec::default()
+            },
+            strict_baseline: false,
+        }
+    }
+
+    /// The false-alarm promise each mode's limit makes, checked on fresh readings of the same
+    /// process, windowed (w = 4, with differences) as the device windows them: autocorrelated
+    /// samples, both for a known-mode bank and for a nearest-mode bank (flagged only outside
+    /// every mode's limit). The promise is the expected rate over baselines, so one baseline's
+    /// rate is compared with the "at most" figure at the stated confidence, over several seeds.
+    #[test]
+    fn the_promise_holds_on_windowed_autocorrelated_samples() {
+        let alpha = 0.01;
+        let dir = tempfile::tempdir().unwrap();
+        let mut over_at_most = 0;
+        let seeds = 3;
+        for seed in 0..seeds {
+            let mut rng = ChaCha8Rng::seed_from_u64(100 + seed);
+            let (rows, modes) = readings(&mut rng, 8, 400);
+            let path = dir.path().join(format!("b{seed}.csv"));
+            let mut text = String::from("a,b,speed\n");
+            for (r, m) in rows.iter().zip(&modes) {
+                text.push_str(&format!("{},{},{m}\n", r[0], r[1]));
+            }
+            std::fs::write(&path, text).unwrap();
+            let (test_rows, test_modes) = readings(&mut rng, 40, 2000);
+            let test = RawRows {
+                file: "test".into(),
+                features: vec!["a".into(), "b".into()],
+                values: test_rows.iter().flatten().copied().collect(),
+                lines: (2..2 + test_rows.len() as u64).collect(),
+                modes: test_modes,
+            };
+            let samples = window_samples(&test, 4, true).unwrap();
+            for known in [true, false] {
+                let b = BankSpec {
+                    modes: ModeCount::Fixed(if known { 1 } else { 2 }),
+                    mode_column: known.then(|| "speed".to_string()),
+                    window: 4,
+                    differences: true,
+                    ..BankSpec::default()
+                };
+                let mut a = spec(&path, alpha);
+                if !known {
+                    a.csv.columns = Some(vec!["a".into(), "b".into()]);
+                }
+                let fit = fit_bank(&a, &b).unwrap();
+                assert_eq!(fit.modes.len(), 2);
+                // The true mode of each test sample: known-mode modes are numbered by the
+                // column; EM's by weight, so match them by the first feature's mean.
+                let order: Vec<usize> = if known || fit.modes[0].trained.fitted.mean[0] < 13.0 {
+                    vec![0, 1]
+                } else {
+                    vec![1, 0]
+                };
+                let mut flagged = [0u64; 2];
+                let mut count = [0u64; 2];
+                for (y, md) in samples.values.chunks_exact(4).zip(&samples.modes) {
+                    let truth = usize::from(*md);
+                    let outside = |k: usize| {
+                        let t = &fit.modes[k].trained;
+                        t.fitted.d2_f64(y) > f64::from(t.thresholds.alarm)
+                    };
+                    let flag = if known {
+                        outside(order[truth])
+                    } else {
+                        outside(0) && outside(1)
+                    };
+                    count[truth] += 1;
+                    flagged[truth] += u64::from(flag);
+                }
+                for truth in 0..2 {
+                    let p = &fit.modes[order[truth]].trained.promise;
+                    let rate = flagged[truth] as f64 / count[truth] as f64;
+                    // Monte-Carlo error of the rate: the samples are correlated, so allow
+                    // 4 binomial standard errors of a tenth of the samples.
+                    let se = (p.expected_per_reading / (count[truth] as f64 / 10.0)).sqrt();
+                    assert!(
+                        rate <= p.at_most_per_reading + 4.0 * se,
+                        "seed {seed}, known {known}, mode {truth}: {rate} flagged, promised at most {} (expected {})",
+                        p.at_most_per_reading,
+                        p.expected_per_reading
+                    );
+                    eprintln!(
+                        "seed {seed} known {known} mode {truth}: flagged {rate:.5}, expected {:.5}, at most {:.5}",
+                        p.expected_per_reading, p.at_most_per_reading
+                    );
+                    if rate > p.at_most_per_reading {
+                        over_at_most += 1;
+                    }
+                    // Not vacuous: the limit is not far above what it needs to be.
+                    assert!(
+                        rate > 0.2 * alpha,
+                        "seed {seed}, known {known}, mode {truth}: {rate}"
+                    );
+                }
+            }
+        }
+        // "At most" holds with 90 % confidence: of 12 checks, more than 4 over it would be
+        // unlikely (binomial, p = 0.1: P(X ≥ 5) ≈ 0.004).
+        assert!(
+            over_at_most <= 4,
+            "{over_at_most} of {} over the at-most figure",
+            4 * seeds
+        );
     }
 
     #[test]
