@@ -10,7 +10,10 @@ use crate::commands::common::CsvArgs;
 use crate::data::card::ModelCard;
 use crate::data::output::Outputs;
 use crate::data::paths::Role;
+use crate::fit::mixture::MixtureOptions;
 use crate::fit::Shrinkage;
+use crate::pipeline::bank::{BankSpec, ModeCount, DEFAULT_DRIFT_BOUND, DEFAULT_MAX_MODES};
+use crate::pipeline::bank_out::{bank_summary_json, bank_summary_text, train_bank};
 use crate::pipeline::fit_report::report_data;
 use crate::pipeline::fleet::{fit_fleet, FleetSpec};
 use crate::pipeline::limits::LimitSpec;
@@ -145,9 +148,50 @@ pub struct FitArgs {
     /// the worst d² difference from the f32 model is printed. Not for log-transformed features.
     #[arg(long)]
     pub no_fpu: bool,
+    /// Operating modes: a bank of this many Gaussians (1 to 8), the device scoring each reading
+    /// against the nearest (in d² over each mode's alarm limit); `auto` chooses the count by BIC.
+    /// The modes are found by EM (a Gaussian mixture) on the standardised baseline.
+    #[arg(long, default_value = "1", value_name = "K|auto")]
+    pub modes: ModeCount,
+    /// With `--modes auto`: the most modes tried.
+    #[arg(long, default_value_t = DEFAULT_MAX_MODES, value_name = "K")]
+    pub max_modes: usize,
+    /// Known modes: this column holds the mode the device will be told with each reading (an
+    /// integer 0 to 7, e.g. a speed setpoint); one Gaussian is fitted per value. Not a feature.
+    #[arg(long, value_name = "COLUMN", conflicts_with = "modes")]
+    pub mode_column: Option<String>,
+    /// Score the mean of the last W readings (1 to 16); a window restarts after a reading that
+    /// cannot be scored and at a change of mode, and scores nothing until it is full again.
+    #[arg(long, default_value_t = 1, value_name = "W")]
+    pub window: u8,
+    /// Also score the first differences of the readings (x now − x before) beside the mean.
+    #[arg(long)]
+    pub differences: bool,
+    /// Follow slow drift: the centre moves towards normal readings with this half-life, in
+    /// readings (frozen while an alarm is raised or a reading faulted).
+    #[arg(long, value_name = "READINGS")]
+    pub drift_half_life: Option<f64>,
+    /// With `--drift-half-life`: the most the centre may move, per scored value, in pooled
+    /// within-mode standard deviations; reaching it is a `drift` event.
+    #[arg(long, default_value_t = DEFAULT_DRIFT_BOUND, value_name = "SIGMA", requires = "drift_half_life")]
+    pub drift_bound: f64,
 }
 
 impl FitArgs {
+    /// The bank settings these arguments give.
+    pub fn bank(&self) -> BankSpec {
+        BankSpec {
+            modes: self.modes,
+            max_modes: self.max_modes,
+            mode_column: self.mode_column.clone(),
+            window: self.window,
+            differences: self.differences,
+            drift_half_life: self.drift_half_life,
+            drift_bound: self.drift_bound,
+            mixture: MixtureOptions::default(),
+        }
+    }
+
     /// The training settings these arguments give.
     pub fn spec(&self) -> TrainSpec {
         TrainSpec {
@@ -191,7 +235,13 @@ impl FitArgs {
 
 /// Run `fit`.
 pub fn run(a: &FitArgs) -> Result<()> {
+    let bank = a.bank();
     if let Some(by) = &a.by {
+        anyhow::ensure!(
+            bank.is_plain(),
+            "--by cannot be combined with --modes, --mode-column, --window, --differences or \
+             --drift-half-life yet: fit a bank per machine from its own baseline file"
+        );
         return run_fleet(a, by);
     }
     let mut inputs = vec![Role::new("the baseline", &a.baseline)];
@@ -199,6 +249,9 @@ pub fn run(a: &FitArgs) -> Result<()> {
         inputs.push(Role::new("the --validation file", v));
     }
     check_output_paths(&a.out, a.report.as_deref(), &inputs)?;
+    if !bank.is_plain() {
+        return run_bank(a, &bank);
+    }
     let t = train(&a.spec())?;
     // Blob, card and report are replaced together or not at all.
     let mut outputs = Outputs::new();
@@ -225,6 +278,31 @@ pub fn run(a: &FitArgs) -> Result<()> {
             a.report
                 .as_ref()
                 .map_or(String::new(), |r| format!(" and {}", r.display()))
+        );
+    }
+    Ok(())
+}
+
+/// Run `fit` for a bank (blob version 2).
+fn run_bank(a: &FitArgs, bank: &BankSpec) -> Result<()> {
+    anyhow::ensure!(
+        a.report.is_none(),
+        "--report is not available for a bank yet (--modes, --mode-column, --window, \
+         --differences, --drift-half-life); the summary lists every mode"
+    );
+    let t = train_bank(&a.spec(), bank)?;
+    let mut outputs = Outputs::new();
+    outputs.stage_bytes(&a.out, &t.blob)?;
+    outputs.stage(&ModelCard::path_for(&a.out), |w| t.card.write_to(w))?;
+    outputs.commit()?;
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&bank_summary_json(&t))?);
+    } else {
+        print!("{}", bank_summary_text(&t));
+        println!(
+            "Wrote {} and {}.",
+            a.out.display(),
+            ModelCard::path_for(&a.out).display()
         );
     }
     Ok(())

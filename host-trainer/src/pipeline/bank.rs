@@ -30,7 +30,11 @@ use std::path::Path;
 use anyhow::{bail, ensure, Context, Result};
 use serde::Serialize;
 
+use ellipsoid_core::window::{Window, WindowSpec};
+use ellipsoid_core::ReadingFault;
+
 use crate::data::ingest::{self, CsvOptions, Layout, Reader};
+use crate::device::replay::to_device;
 use crate::fit::memory::{fit_rows, Table};
 use crate::fit::mixture::{choose_modes, fit_mixture, Mixture, MixtureOptions};
 use crate::pipeline::train::{train_with, TrainSpec, Trained};
@@ -177,6 +181,69 @@ impl BankSpec {
     }
 }
 
+/// Run `$body` with `$N` and `$M` bound as `const usize`: `$N = $n`, and `$M = $N`, or `2 $N`
+/// when `$diff` (the shapes a bank can have). `None` outside them.
+macro_rules! with_shape {
+    ($n:expr, $diff:expr, $N:ident, $M:ident => $body:block) => {{
+        macro_rules! arm {
+            ($v:literal) => {{
+                const $N: usize = $v;
+                if $diff {
+                    if 2 * $v <= ellipsoid_core::MAX_FEATURES {
+                        const $M: usize = if 2 * $v <= ellipsoid_core::MAX_FEATURES {
+                            2 * $v
+                        } else {
+                            $v
+                        };
+                        Some($body)
+                    } else {
+                        None
+                    }
+                } else {
+                    const $M: usize = $v;
+                    Some($body)
+                }
+            }};
+        }
+        match $n {
+            1 => arm!(1),
+            2 => arm!(2),
+            3 => arm!(3),
+            4 => arm!(4),
+            5 => arm!(5),
+            6 => arm!(6),
+            7 => arm!(7),
+            8 => arm!(8),
+            9 => arm!(9),
+            10 => arm!(10),
+            11 => arm!(11),
+            12 => arm!(12),
+            13 => arm!(13),
+            14 => arm!(14),
+            15 => arm!(15),
+            16 => arm!(16),
+            17 => arm!(17),
+            18 => arm!(18),
+            19 => arm!(19),
+            20 => arm!(20),
+            21 => arm!(21),
+            22 => arm!(22),
+            23 => arm!(23),
+            24 => arm!(24),
+            25 => arm!(25),
+            26 => arm!(26),
+            27 => arm!(27),
+            28 => arm!(28),
+            29 => arm!(29),
+            30 => arm!(30),
+            31 => arm!(31),
+            32 => arm!(32),
+            _ => None,
+        }
+    }};
+}
+pub(crate) use with_shape;
+
 /// The baseline rows in file order.
 #[derive(Clone, Debug)]
 pub struct RawRows {
@@ -320,7 +387,6 @@ pub fn window_samples(raw: &RawRows, window: u8, differences: bool) -> Result<Sa
             filling: 0,
         });
     }
-    let need = if differences { w.max(2) } else { w };
     let m = names.len();
     let mut s = Samples {
         names,
@@ -329,34 +395,41 @@ pub fn window_samples(raw: &RawRows, window: u8, differences: bool) -> Result<Sa
         modes: Vec::new(),
         filling: 0,
     };
-    let rows: Vec<&[f64]> = raw.values.chunks_exact(n).collect();
-    let mut count = 0usize;
-    let mut y = vec![0.0f64; m];
-    for (r, x) in rows.iter().enumerate() {
-        let restart = r == 0
-            || raw.lines[r] != raw.lines[r - 1] + 1
-            || (!raw.modes.is_empty() && raw.modes[r] != raw.modes[r - 1]);
-        count = if restart { 1 } else { count + 1 };
-        if count < need {
-            s.filling += 1;
-            continue;
-        }
-        for i in 0..n {
-            let mut sum = 0.0f32;
-            for back in (0..w).rev() {
-                sum += rows[r - back][i] as f32;
+    let spec = WindowSpec {
+        length: window,
+        differences,
+    };
+    // The core's own window, so that the samples are the device's bits. Bad readings were
+    // refused before (a baseline is complete), so its only faults here are "filling".
+    with_shape!(n, differences, N, M => {
+        let mut win = Window::<N, M>::new(spec, 0)
+            .map_err(|e| anyhow::anyhow!("{}: the window cannot be built: {e}", raw.file))?;
+        let mut x = [0f32; N];
+        for (r, row) in raw.values.chunks_exact(n).enumerate() {
+            let restart = r > 0
+                && (raw.lines[r] != raw.lines[r - 1] + 1
+                    || (!raw.modes.is_empty() && raw.modes[r] != raw.modes[r - 1]));
+            if restart {
+                win.restart();
             }
-            y[i] = f64::from(sum / window as f32);
-            if differences {
-                y[n + i] = f64::from(x[i] as f32 - rows[r - 1][i] as f32);
+            for (xi, v) in x.iter_mut().zip(row) {
+                *xi = to_device(*v);
+            }
+            match win.push(&x) {
+                Ok(y) => {
+                    s.values.extend(y.iter().map(|v| f64::from(*v)));
+                    s.lines.push(raw.lines[r]);
+                    if !raw.modes.is_empty() {
+                        s.modes.push(raw.modes[r]);
+                    }
+                }
+                Err(ReadingFault::WindowFilling { .. }) => s.filling += 1,
+                Err(e) => bail!("{}: line {}: {e}", raw.file, raw.lines[r]),
             }
         }
-        s.values.extend_from_slice(&y);
-        s.lines.push(raw.lines[r]);
-        if !raw.modes.is_empty() {
-            s.modes.push(raw.modes[r]);
-        }
-    }
+        Ok::<(), anyhow::Error>(())
+    })
+    .ok_or_else(|| anyhow::anyhow!("{}: {n} features and {m} scored values: no bank has that shape (at most {} scored values)", raw.file, ellipsoid_core::MAX_FEATURES))??;
     Ok(s)
 }
 

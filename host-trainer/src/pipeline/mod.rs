@@ -4,6 +4,7 @@
 //! Nothing here parses a command line or prints.
 
 pub mod bank;
+pub mod bank_out;
 pub mod evaluate;
 pub mod fit_report;
 pub mod fleet;

@@ -46,6 +46,17 @@ pub fn summary_text(t: &Trained) -> String {
     s
 }
 
+/// The summary of one mode of a bank: [`summary_text`] without the blob (the bank has one).
+pub fn mode_summary_text(t: &Trained) -> String {
+    let mut s = String::new();
+    rows_section(&mut s, t);
+    features_section(&mut s, t);
+    diagnostics_section(&mut s, t);
+    threshold_section(&mut s, t);
+    holdout_section(&mut s, t);
+    s
+}
+
 /// Rows used, skipped and held out; warnings; the estimator.
 fn rows_section(s: &mut String, t: &Trained) {
     let f = &t.fitted;
