@@ -18,7 +18,12 @@ const LAYERS: &[(&str, u8)] = &[
 ];
 
 /// Exported macros live at the crate root but belong to the layer that defines them.
-const MACROS: &[(&str, &str)] = &[("with_dim", "device")];
+const MACROS: &[(&str, &str)] = &[
+    ("with_dim", "device"),
+    ("with_bank_dims", "device"),
+    ("__dim_arms", "device"),
+    ("__bank_dim_arms", "device"),
+];
 
 fn height(module: &str) -> Option<u8> {
     LAYERS.iter().find(|(m, _)| *m == module).map(|(_, h)| *h)

@@ -16,7 +16,7 @@ use ellipsoid_trainer::commands::common::{load_model, ModelInput};
 use ellipsoid_trainer::data::card::ModelCard;
 use ellipsoid_trainer::data::ingest::CsvOptions;
 use ellipsoid_trainer::data::output::Outputs;
-use ellipsoid_trainer::device::dims::{decode_any, AnyModel};
+use ellipsoid_trainer::device::dims::{decode_any, AnyModel, Decoded};
 use ellipsoid_trainer::device::replay::{to_device, Replayer};
 use ellipsoid_trainer::fit::memory::{fit_partial, fit_rows, Partial, Table};
 use ellipsoid_trainer::fit::Shrinkage;
@@ -292,9 +292,10 @@ impl Model {
         let x = self.device_rows(&values)?;
         let p = self.features.len();
         let n = x.len() / p.max(1);
-        let model = self.model.as_ref();
+        let blob = &self.blob;
         let out = py.detach(|| {
-            let mut rp = Replayer::new(model);
+            // The blob as the device runs it (the core's tracker), like `ellipsoid replay`.
+            let mut rp = Replayer::from_blob(blob).map_err(|e| anyhow!("{e}"))?;
             let mut o = ReplayOut::with_capacity(n, p);
             for r in x.chunks_exact(p) {
                 let row = rp.step(r);
@@ -316,8 +317,9 @@ impl Model {
                     None => o.contributions.extend(std::iter::repeat_n(f32::NAN, p)),
                 }
             }
-            o
-        });
+            Ok::<_, anyhow::Error>(o)
+        })
+        .map_err(err)?;
         let d = PyDict::new(py);
         d.set_item("index", out.index.into_pyarray(py))?;
         d.set_item("d2", out.d2.into_pyarray(py))?;
@@ -464,7 +466,16 @@ fn load_py(path: PathBuf) -> PyResult<Model> {
         summary: String::new(),
         summary_json: String::new(),
         report_html: String::new(),
-        model: loaded.model,
+        model: match loaded.decoded {
+            Decoded::Model(m) => m,
+            Decoded::Bank(_) => {
+                return Err(err(anyhow!(
+                    "{}: a model bank (format 2); the Python package reads single models \
+                     (format 1) so far: replay it with `ellipsoid replay`",
+                    path.display()
+                )))
+            }
+        },
     })
 }
 

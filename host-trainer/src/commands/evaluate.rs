@@ -9,8 +9,9 @@ use clap::Args;
 use crate::commands::common::{load_model, parse_delimiter, ModelInput};
 use crate::data::output;
 use crate::data::paths::Role;
+use crate::device::replay::Replayer;
 use crate::pipeline::evaluate::{
-    diagonal_of, model_correlation, qq_points, score_labelled, top_alarms,
+    diagonal_of, model_correlation, qq_points, score_labelled, score_stream, top_alarms, StreamSpec,
 };
 use crate::report;
 use crate::stats::metrics;
@@ -23,6 +24,9 @@ pub struct EvaluateArgs {
     /// Label column (1 = anomaly).
     #[arg(long, default_value = "label", value_name = "NAME")]
     pub label_column: String,
+    /// The column that tells a known-mode bank each reading's mode (default: the model card's).
+    #[arg(long, value_name = "NAME")]
+    pub mode_column: Option<String>,
     /// Readings a second (default: the rate in the model card).
     #[arg(long, value_name = "HZ")]
     pub rate_hz: Option<f64>,
@@ -49,6 +53,12 @@ pub fn run(a: &EvaluateArgs) -> Result<()> {
         a.model.refuse_overwrite(&[Role::new("--report", r)])?;
     }
     let loaded = load_model(&a.model)?;
+    loaded.check_names(&a.model)?;
+    if a.report.is_some() {
+        // The report draws one model's thresholds and its per-feature twin; a bank has one
+        // pair of limits per mode and a window, which it does not draw yet.
+        loaded.single(&a.model.model, "--report")?;
+    }
     let rate = a
         .rate_hz
         .or(loaded.card.as_ref().map(|c| c.rate_hz))
@@ -57,18 +67,28 @@ pub fn run(a: &EvaluateArgs) -> Result<()> {
         rate.is_finite() && rate > 0.0,
         "--rate-hz must be a positive number of readings a second"
     );
-    let scored = score_labelled(
-        loaded.model.as_ref(),
-        &loaded.features,
-        &a.model.input,
-        &a.label_column,
-        a.timestamp.clone(),
-        a.delimiter,
-        a.quiet,
-    )?;
+    // The device's own code over the stream: window, bank, alarm machine and drift, their state
+    // carried from reading to reading (a format 1 blob is the bank of one mode, window one).
+    let spec = StreamSpec {
+        features: loaded.features.clone(),
+        mode_column: loaded.mode_column(a.mode_column.as_deref(), &a.model.model)?,
+        label_column: Some(a.label_column.clone()),
+        timestamp: a.timestamp.clone(),
+        delimiter: a.delimiter,
+        quiet: a.quiet,
+    };
+    let rp = Replayer::from_blob(&loaded.blob)
+        .map_err(|e| anyhow::anyhow!("{}: {e}", a.model.model.display()))?;
+    let scored = score_stream(rp, &a.model.input, &spec)?;
     let eval = scored.evaluate(rate);
+    let faults = scored.faults();
+    let drift = loaded
+        .bank()
+        .and_then(|b| b.drift.as_ref())
+        .map(|_| scored.drift());
     if let Some(path) = &a.report {
-        let p = loaded.model.params();
+        let model = loaded.single(&a.model.model, "--report")?;
+        let p = model.params();
         let d2 = scored.d2();
         let alpha = loaded.card.as_ref().map_or_else(
             || {
@@ -79,7 +99,7 @@ pub fn run(a: &EvaluateArgs) -> Result<()> {
             },
             |c| c.alpha,
         );
-        let (diag_thr, diag_model) = diagonal_of(loaded.model.as_ref(), alpha)?;
+        let (diag_thr, diag_model) = diagonal_of(model, alpha)?;
         let diag = score_labelled(
             diag_model.as_ref(),
             &loaded.features,
@@ -118,7 +138,7 @@ pub fn run(a: &EvaluateArgs) -> Result<()> {
                 .filter_map(|(d, _)| d.map(f64::from))
                 .collect(),
             qq: qq_points(&d2, &scored.labels, loaded.features.len()),
-            corr: model_correlation(loaded.model.as_ref()),
+            corr: model_correlation(model),
             top_alarms: top_alarms(&scored.rows, 8),
             diagonal: Some(report::DiagonalComparison {
                 d2_diag: diag.d2(),
@@ -136,7 +156,14 @@ pub fn run(a: &EvaluateArgs) -> Result<()> {
         output::write_bytes(path, html.as_bytes())?;
     }
     if a.json {
-        println!("{}", serde_json::to_string_pretty(&eval)?);
+        let mut v = serde_json::to_value(&eval)?;
+        if let Some(o) = v.as_object_mut() {
+            o.insert("unscored_by_cause".into(), serde_json::to_value(faults)?);
+            if let Some(d) = drift {
+                o.insert("drift".into(), serde_json::to_value(d)?);
+            }
+        }
+        println!("{}", serde_json::to_string_pretty(&v)?);
     } else {
         println!(
             "Evaluated {} with {}:",
@@ -144,6 +171,25 @@ pub fn run(a: &EvaluateArgs) -> Result<()> {
             a.model.model.display()
         );
         print!("{eval}");
+        if eval.unscored > 0 {
+            println!(
+                "not scored, by cause: {} bad reading(s), {} with the reading window filling, {} \
+                 without a known mode, {} other; each counts as flagged above (the device never \
+                 calls a reading normal that it could not score)",
+                faults.bad_reading, faults.window_filling, faults.unknown_mode, faults.other
+            );
+        }
+        if let Some(d) = drift {
+            match d.first_at_bound {
+                Some(i) => println!(
+                    "drift: the centre's shift reached its bound on a feature at reading {i} \
+                     ({} drift event(s)); it is clamped there, so the model follows that feature \
+                     no further",
+                    d.events
+                ),
+                None => println!("drift: the centre's shift stayed inside its bounds"),
+            }
+        }
         if let Some(path) = &a.report {
             println!("Wrote {}.", path.display());
         }

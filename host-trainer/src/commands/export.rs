@@ -23,7 +23,7 @@ use clap::{Args, ValueEnum};
 use crate::data::card::ModelCard;
 use crate::data::output;
 use crate::data::paths::{refuse_clashes, Role};
-use crate::device::dims::decode_file;
+use crate::device::dims::read_blob_file;
 
 /// The forms `export` writes.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -303,17 +303,18 @@ pub fn run(a: &ExportArgs) -> Result<()> {
         check_c_name(&a.name)?;
     }
     let settled = output::settle(&a.blob)?;
-    let (bytes, model) = decode_file(&a.blob)?;
+    // Either format: a model bank (format 2) goes to its slot as it is, like a single model.
+    let (bytes, decoded) = read_blob_file(&a.blob)?;
     drop(settled);
-    let p = model.params();
+    let meta = decoded.meta();
     let crc_bytes: [u8; 4] = bytes
         .get(bytes.len().saturating_sub(4)..)
         .and_then(|b| b.try_into().ok())
         .context("a decoded blob has a CRC")?;
     let facts = BlobFacts {
-        n: model.n(),
-        model_id: p.meta.model_id,
-        sequence: p.meta.sequence,
+        n: decoded.n(),
+        model_id: meta.model_id,
+        sequence: meta.sequence,
         crc: u32::from_le_bytes(crc_bytes),
     };
     let text = match (a.format, &placement) {

@@ -1,4 +1,5 @@
-//! `ellipsoid replay`: every reading of a CSV through the core and its alarm state machine.
+//! `ellipsoid replay`: every reading of a CSV through the core as the device runs it: the
+//! reading window, the model bank, the alarm state machine and the drift, one stream.
 
 use std::path::PathBuf;
 
@@ -6,19 +7,23 @@ use anyhow::Result;
 use clap::Args;
 
 use crate::commands::common::{load_model, parse_delimiter, ModelInput};
-use crate::data::ingest::{CsvOptions, Reader};
 use crate::data::output;
 use crate::data::paths::Role;
-use crate::device::replay::{to_device, CsvSink, Replayer};
+use crate::device::replay::{CsvSink, Replayer};
+use crate::pipeline::evaluate::{replay_stream, StreamSpec};
 
 /// Options of `replay`.
 #[derive(Debug, Clone, Args)]
 pub struct ReplayArgs {
     #[command(flatten)]
     pub model: ModelInput,
-    /// Output CSV: index, d2, d2_bits, verdict, alarm, fault, event, top_feature, c_<feature>...
+    /// Output CSV: index, d2, d2_bits, verdict, alarm, fault, event, top_feature, c_<feature>...;
+    /// a model bank (format 2) adds mode and drift_at_bound after top_feature.
     #[arg(long, short, value_name = "FILE")]
     pub out: PathBuf,
+    /// The column that tells a known-mode bank each reading's mode (default: the model card's).
+    #[arg(long, value_name = "NAME")]
+    pub mode_column: Option<String>,
     /// A timestamp column to skip (default: timestamp, time or datetime).
     #[arg(long, value_name = "NAME")]
     pub timestamp: Option<String>,
@@ -34,31 +39,26 @@ pub struct ReplayArgs {
 pub fn run(a: &ReplayArgs) -> Result<()> {
     a.model.refuse_overwrite(&[Role::new("--out", &a.out)])?;
     let loaded = load_model(&a.model)?;
-    let opts = CsvOptions {
-        delimiter: a.delimiter,
-        columns: Some(loaded.features.clone()),
+    loaded.check_names(&a.model)?;
+    let spec = StreamSpec {
+        features: loaded.features.clone(),
+        mode_column: loaded.mode_column(a.mode_column.as_deref(), &a.model.model)?,
+        label_column: None,
         timestamp: a.timestamp.clone(),
-        label: None,
-        skip_bad_rows: false,
-        allow_missing: true,
+        delimiter: a.delimiter,
         quiet: a.quiet,
     };
-    let mut reader = Reader::open(&a.model.input, &opts)?;
-    let mut rp = Replayer::new(loaded.model.as_ref());
-    let mut x = vec![0.0f32; loaded.features.len()];
+    let mut rp = Replayer::from_blob(&loaded.blob)
+        .map_err(|e| anyhow::anyhow!("{}: {e}", a.model.model.display()))?;
     let mut counts = (0u64, 0u64, 0u64);
     output::write_atomic(&a.out, |w| {
-        let mut sink = CsvSink::new(w, &loaded.features)?;
-        while let Some(row) = reader.next_row()? {
-            for (d, s) in x.iter_mut().zip(row.values) {
-                *d = to_device(*s);
-            }
-            let r = rp.step(&x);
+        let mut sink = CsvSink::for_replayer(w, &loaded.scored_features(), &rp)?;
+        replay_stream(&mut rp, &a.model.input, &spec, |r, _| {
             counts.0 += 1;
             counts.1 += u64::from(r.above());
             counts.2 += u64::from(r.score.is_err());
-            sink.row(&r)?;
-        }
+            sink.row(&r)
+        })?;
         sink.finish()?;
         Ok(())
     })?;

@@ -13,135 +13,64 @@
 #[macro_export]
 macro_rules! with_dim {
     ($n:expr, $N:ident => $body:block) => {
+        $crate::__dim_arms!($n, $N, $body, [1 2 3 4 5 6 7 8 9 10 11 12 13 14 15 16 17 18 19 20 21 22 23 24 25 26 27 28 29 30 31 32])
+    };
+}
+
+/// Run `$body` with `$N` and `$M` bound as `const usize`s equal to `$n` and `$m`, for the pairs a
+/// model bank can have: `M = N` or `M = 2 N` (the first differences doubling the scored vector),
+/// N from 1 to 32. Evaluates to `Some(body)`, or `None` for any other pair.
+///
+/// ```
+/// let r = ellipsoid_trainer::with_bank_dims!(3usize, 6usize, N, M => { (N, M) });
+/// assert_eq!(r, Some((3, 6)));
+/// assert_eq!(ellipsoid_trainer::with_bank_dims!(3usize, 5usize, N, M => { N + M }), None);
+/// ```
+#[macro_export]
+macro_rules! with_bank_dims {
+    ($n:expr, $m:expr, $N:ident, $M:ident => $body:block) => {
+        $crate::__bank_dim_arms!(($n, $m), $N, $M, $body, [1 2 3 4 5 6 7 8 9 10 11 12 13 14 15 16 17 18 19 20 21 22 23 24 25 26 27 28 29 30 31 32], [(1 2) (2 4) (3 6) (4 8) (5 10) (6 12) (7 14) (8 16) (9 18) (10 20) (11 22) (12 24) (13 26) (14 28) (15 30) (16 32) (17 34) (18 36) (19 38) (20 40) (21 42) (22 44) (23 46) (24 48) (25 50) (26 52) (27 54) (28 56) (29 58) (30 60) (31 62) (32 64)])
+    };
+}
+
+/// The arms of [`with_dim!`]: one per listed dimension.
+#[doc(hidden)]
+#[macro_export]
+macro_rules! __dim_arms {
+    ($n:expr, $N:ident, $body:block, [$($k:literal)*]) => {
         match $n {
-            1 => {
-                const $N: usize = 1;
-                Some($body)
-            }
-            2 => {
-                const $N: usize = 2;
-                Some($body)
-            }
-            3 => {
-                const $N: usize = 3;
-                Some($body)
-            }
-            4 => {
-                const $N: usize = 4;
-                Some($body)
-            }
-            5 => {
-                const $N: usize = 5;
-                Some($body)
-            }
-            6 => {
-                const $N: usize = 6;
-                Some($body)
-            }
-            7 => {
-                const $N: usize = 7;
-                Some($body)
-            }
-            8 => {
-                const $N: usize = 8;
-                Some($body)
-            }
-            9 => {
-                const $N: usize = 9;
-                Some($body)
-            }
-            10 => {
-                const $N: usize = 10;
-                Some($body)
-            }
-            11 => {
-                const $N: usize = 11;
-                Some($body)
-            }
-            12 => {
-                const $N: usize = 12;
-                Some($body)
-            }
-            13 => {
-                const $N: usize = 13;
-                Some($body)
-            }
-            14 => {
-                const $N: usize = 14;
-                Some($body)
-            }
-            15 => {
-                const $N: usize = 15;
-                Some($body)
-            }
-            16 => {
-                const $N: usize = 16;
-                Some($body)
-            }
-            17 => {
-                const $N: usize = 17;
-                Some($body)
-            }
-            18 => {
-                const $N: usize = 18;
-                Some($body)
-            }
-            19 => {
-                const $N: usize = 19;
-                Some($body)
-            }
-            20 => {
-                const $N: usize = 20;
-                Some($body)
-            }
-            21 => {
-                const $N: usize = 21;
-                Some($body)
-            }
-            22 => {
-                const $N: usize = 22;
-                Some($body)
-            }
-            23 => {
-                const $N: usize = 23;
-                Some($body)
-            }
-            24 => {
-                const $N: usize = 24;
-                Some($body)
-            }
-            25 => {
-                const $N: usize = 25;
-                Some($body)
-            }
-            26 => {
-                const $N: usize = 26;
-                Some($body)
-            }
-            27 => {
-                const $N: usize = 27;
-                Some($body)
-            }
-            28 => {
-                const $N: usize = 28;
-                Some($body)
-            }
-            29 => {
-                const $N: usize = 29;
-                Some($body)
-            }
-            30 => {
-                const $N: usize = 30;
-                Some($body)
-            }
-            31 => {
-                const $N: usize = 31;
-                Some($body)
-            }
-            32 => {
-                const $N: usize = 32;
-                Some($body)
-            }
+            $(
+                $k => {
+                    const $N: usize = $k;
+                    Some($body)
+                }
+            )*
+            _ => None,
+        }
+    };
+}
+
+/// The arms of [`with_bank_dims!`]: `(k, k)` for each `k` of the first list, `(k, 2k)` for each
+/// pair of the second.
+#[doc(hidden)]
+#[macro_export]
+macro_rules! __bank_dim_arms {
+    ($nm:expr, $N:ident, $M:ident, $body:block, [$($k:literal)*], [$(($h:literal $d:literal))*]) => {
+        match $nm {
+            $(
+                ($k, $k) => {
+                    const $N: usize = $k;
+                    const $M: usize = $k;
+                    Some($body)
+                }
+            )*
+            $(
+                ($h, $d) => {
+                    const $N: usize = $h;
+                    const $M: usize = $d;
+                    Some($body)
+                }
+            )*
             _ => None,
         }
     };
@@ -154,6 +83,8 @@ use ellipsoid_core::{
     blob, AlarmPolicy, DecodeError, FixedModel, Model, ModelMeta, ModelParams, ReadingFault,
     Scored, Thresholds,
 };
+
+use crate::device::track::{bank_view, BankView};
 
 /// A decoded core model whose dimension is known only at run time.
 ///
@@ -322,13 +253,60 @@ impl<const N: usize, const T: usize> AnyModel for FixedModel<N, T> {
     }
 }
 
-/// Read and decode a blob file, with errors that name the file (and say plainly when the blob's
-/// dimension is one no `Model<N>` exists for).
-pub fn decode_file(path: &std::path::Path) -> anyhow::Result<(Vec<u8>, Box<dyn AnyModel>)> {
+/// A blob of either format, decoded by the core.
+pub enum Decoded {
+    /// Format 1: a single model (f32 or fixed point).
+    Model(Box<dyn AnyModel>),
+    /// Format 2: a model bank (modes, window, drift), as the core's bank reader sees it.
+    Bank(BankView),
+}
+
+impl Decoded {
+    /// Raw readings per sample.
+    pub fn n(&self) -> usize {
+        match self {
+            Decoded::Model(m) => m.n(),
+            Decoded::Bank(b) => b.n,
+        }
+    }
+
+    /// Identifier, training time, sequence.
+    pub fn meta(&self) -> ModelMeta {
+        match self {
+            Decoded::Model(m) => m.params().meta,
+            Decoded::Bank(b) => b.meta,
+        }
+    }
+
+    /// The single model, for a format 1 blob.
+    pub fn model(&self) -> Option<&dyn AnyModel> {
+        match self {
+            Decoded::Model(m) => Some(m.as_ref()),
+            Decoded::Bank(_) => None,
+        }
+    }
+}
+
+/// The most bytes a blob of either format can have: a bank of the most modes with drift at
+/// the largest `(N, M)`, or a single model of the largest N.
+pub fn max_blob_len() -> usize {
+    blob::max_len(MAX_DIM)
+        .max(ellipsoid_core::fixed::max_len(MAX_DIM))
+        .max(blob::max_bank_len(
+            MAX_DIM,
+            2 * MAX_DIM,
+            ellipsoid_core::bank::MAX_MODES,
+            true,
+        ))
+}
+
+/// Read and decode a blob file of either format, with errors that name the file (and say
+/// plainly when the blob's dimension is one the core has no type for).
+pub fn read_blob_file(path: &std::path::Path) -> anyhow::Result<(Vec<u8>, Decoded)> {
     use std::io::Read as _;
     // Read no more than the largest blob and one byte: `/dev/zero` or a log named by mistake
     // is refused at once instead of being read whole.
-    let limit = blob::max_len(MAX_DIM).max(ellipsoid_core::fixed::max_len(MAX_DIM));
+    let limit = max_blob_len();
     let mut bytes = Vec::new();
     std::fs::File::open(path)
         .and_then(|f| f.take(limit as u64 + 1).read_to_end(&mut bytes))
@@ -338,7 +316,8 @@ pub fn decode_file(path: &std::path::Path) -> anyhow::Result<(Vec<u8>, Box<dyn A
         "{}: longer than any model blob ({limit} bytes at most): not a blob",
         path.display()
     );
-    if let Ok(h) = blob::Header::parse(&bytes) {
+    let header = blob::Header::parse(&bytes).ok();
+    if let Some(h) = &header {
         anyhow::ensure!(
             (1..=MAX_DIM).contains(&usize::from(h.n)),
             "{}: the blob has {} features; models have 1 to {MAX_DIM}",
@@ -346,9 +325,26 @@ pub fn decode_file(path: &std::path::Path) -> anyhow::Result<(Vec<u8>, Box<dyn A
             h.n
         );
     }
-    let model = decode_any(&bytes)
-        .map_err(|e| anyhow::anyhow!("{}: not a usable model blob: {e}", path.display()))?;
-    Ok((bytes, model))
+    let decoded = match header {
+        Some(h) if h.version == blob::VERSION_BANK => bank_view(&bytes).map(Decoded::Bank),
+        _ => decode_any(&bytes).map(Decoded::Model),
+    }
+    .map_err(|e| anyhow::anyhow!("{}: not a usable model blob: {e}", path.display()))?;
+    Ok((bytes, decoded))
+}
+
+/// Read and decode a single-model (format 1) blob file, with errors that name the file. A
+/// model bank (format 2) is refused by name: read it with [`read_blob_file`].
+pub fn decode_file(path: &std::path::Path) -> anyhow::Result<(Vec<u8>, Box<dyn AnyModel>)> {
+    match read_blob_file(path)? {
+        (bytes, Decoded::Model(m)) => Ok((bytes, m)),
+        (_, Decoded::Bank(b)) => Err(anyhow::anyhow!(
+            "{}: a model bank (format 2: {} mode(s), window {}), not a single model",
+            path.display(),
+            b.modes.len(),
+            b.window.length
+        )),
+    }
 }
 
 /// Decode a blob of any supported dimension through the core's decoder.
@@ -380,6 +376,20 @@ mod tests {
         }
         assert_eq!(with_dim!(0usize, N => { N }), None);
         assert_eq!(with_dim!(33usize, N => { N }), None);
+    }
+
+    #[test]
+    fn every_bank_pair_maps_to_its_consts() {
+        let mut pairs = 0;
+        for n in 0..=40usize {
+            for m in 0..=80usize {
+                let got = with_bank_dims!(n, m, N, M => { (N, M) });
+                let valid = (1..=super::MAX_DIM).contains(&n) && (m == n || m == 2 * n);
+                assert_eq!(got, valid.then_some((n, m)), "N = {n}, M = {m}");
+                pairs += usize::from(valid);
+            }
+        }
+        assert_eq!(pairs, 32 + 32);
     }
 
     #[test]

@@ -4,6 +4,7 @@
 use std::path::Path;
 
 use anyhow::Result;
+use ellipsoid_core::{EventKind, ReadingFault};
 use statrs::distribution::{ChiSquared, ContinuousCDF};
 
 use crate::data::ingest::{CsvOptions, Reader};
@@ -30,6 +31,41 @@ impl Scored {
         self.rows.iter().map(|r| r.alarm).collect()
     }
 
+    /// How many readings could not be scored, by cause (see [`FaultCounts`]).
+    pub fn faults(&self) -> FaultCounts {
+        let mut c = FaultCounts::default();
+        for r in &self.rows {
+            match r.score {
+                Ok(_) => {}
+                Err(ReadingFault::WindowFilling { .. }) => c.window_filling += 1,
+                Err(ReadingFault::UnknownMode { .. }) => c.unknown_mode += 1,
+                Err(ReadingFault::NotFinite { .. } | ReadingFault::LogDomain { .. }) => {
+                    c.bad_reading += 1
+                }
+                Err(_) => c.other += 1,
+            }
+        }
+        c
+    }
+
+    /// The drift of a bank over the stream: its `drift` events, and the first reading at which
+    /// the shift was at its bound.
+    pub fn drift(&self) -> DriftSeen {
+        DriftSeen {
+            events: self
+                .rows
+                .iter()
+                .map(|r| {
+                    r.events
+                        .iter()
+                        .filter(|e| matches!(e, EventKind::Drift { .. }))
+                        .count() as u64
+                })
+                .sum(),
+            first_at_bound: self.rows.iter().position(|r| r.drift_at_bound),
+        }
+    }
+
     /// The evaluation of this stream.
     pub fn evaluate(&self, rate_hz: f64) -> metrics::Evaluation {
         let above: Vec<bool> = self.rows.iter().map(ReplayRow::above).collect();
@@ -45,7 +81,132 @@ impl Scored {
     }
 }
 
-/// Replay a labelled CSV through `model` and its alarm state machine.
+/// Readings the core could not score, by cause. Every one counts as "predicted anomalous" in
+/// the per-reading figures and keeps the fault line on in the figures after the policy (the
+/// device never calls a reading normal that it could not score): a window still filling after
+/// the start of the stream or after a bad reading is a run of such readings.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, serde::Serialize)]
+pub struct FaultCounts {
+    /// A value not finite, or not positive on a log feature: the reading itself.
+    pub bad_reading: u64,
+    /// The reading window not yet whole (stream start, after a bad reading, after a change of
+    /// known mode).
+    pub window_filling: u64,
+    /// A known-mode bank given no mode, or one it does not have.
+    pub unknown_mode: u64,
+    /// Any other fault (an overflow of d² or of the contributions).
+    pub other: u64,
+}
+
+/// What the drift of a bank did over a stream.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, serde::Serialize)]
+pub struct DriftSeen {
+    /// `drift` events (at most one: the first time a feature reaches its bound).
+    pub events: u64,
+    /// 0-based index of the first reading with the shift at its bound.
+    pub first_at_bound: Option<usize>,
+}
+
+/// How one stream of readings is read from its file and handed to the core.
+#[derive(Clone, Debug, Default)]
+pub struct StreamSpec {
+    /// The raw feature columns, by name, in model order.
+    pub features: Vec<String>,
+    /// The column that tells a known-mode bank each reading's mode (an integer 0 to 255; an empty
+    /// cell or `nan` is a reading without a mode, which the core reports as a fault).
+    pub mode_column: Option<String>,
+    /// The label column (1 = anomaly), for evaluation.
+    pub label_column: Option<String>,
+    /// A timestamp column to skip.
+    pub timestamp: Option<String>,
+    /// Field delimiter.
+    pub delimiter: Option<u8>,
+    /// No progress bar.
+    pub quiet: bool,
+}
+
+/// A mode cell as the device is told it: `None` for an empty cell or NaN (no mode given), a
+/// whole number 0 to 255 as is (one the bank does not have is passed on: the core reports
+/// it as a fault), anything else an error naming the file, line and field.
+pub fn mode_value(v: f64, file: &Path, line: u64, field: &str) -> Result<Option<u8>> {
+    if v.is_nan() {
+        return Ok(None);
+    }
+    anyhow::ensure!(
+        v.is_finite() && (0.0..=255.0).contains(&v) && v.fract() == 0.0,
+        "{}: line {line}: field {field}: the mode `{v}` is not a whole number from 0 to 255 \
+         (the integer the machine's controller gives; leave the cell empty for a reading without one)",
+        file.display()
+    );
+    Ok(Some(v as u8))
+}
+
+/// Read the stream `path` row by row and step `rp` on each reading (with its mode, when the spec
+/// names a mode column), calling `each` with the row and its label. Returns the readings read.
+/// State is carried from row to row: one replayer is one stream.
+pub fn replay_stream(
+    rp: &mut Replayer<'_>,
+    path: &Path,
+    spec: &StreamSpec,
+    mut each: impl FnMut(ReplayRow, Option<bool>) -> Result<()>,
+) -> Result<u64> {
+    let n = spec.features.len();
+    let mut columns = spec.features.clone();
+    if let Some(mode) = &spec.mode_column {
+        anyhow::ensure!(
+            !spec.features.contains(mode),
+            "the mode column `{mode}` is one of the model's features; a known-mode bank is told \
+             its mode beside the readings, not as one of them"
+        );
+        // Name the mode column's role when the file lacks it (the reader would call it a feature).
+        let header = Reader::open(
+            path,
+            &CsvOptions {
+                delimiter: spec.delimiter,
+                columns: Some(spec.features.clone()),
+                timestamp: spec.timestamp.clone(),
+                label: spec.label_column.clone(),
+                quiet: true,
+                ..CsvOptions::default()
+            },
+        )?;
+        let names = &header.layout().names;
+        anyhow::ensure!(
+            names.contains(mode),
+            "{}:1: no mode column named `{mode}` (the header has: {})",
+            path.display(),
+            names.join(", ")
+        );
+        columns.push(mode.clone());
+    }
+    let opts = CsvOptions {
+        delimiter: spec.delimiter,
+        columns: Some(columns),
+        timestamp: spec.timestamp.clone(),
+        label: spec.label_column.clone(),
+        skip_bad_rows: false,
+        allow_missing: true,
+        quiet: spec.quiet,
+    };
+    let mut reader = Reader::open(path, &opts)?;
+    let mut x = vec![0.0f32; n];
+    let mut count = 0u64;
+    while let Some(row) = reader.next_row()? {
+        for (d, s) in x.iter_mut().zip(&row.values[..n]) {
+            *d = to_device(*s);
+        }
+        let mode = match &spec.mode_column {
+            Some(field) => mode_value(row.values[n], path, row.line, field)?,
+            None => None,
+        };
+        let label = row.label;
+        each(rp.step_mode(&x, mode), label)?;
+        count += 1;
+    }
+    Ok(count)
+}
+
+/// Replay a labelled CSV through `model` (built in memory) and its alarm state machine.
 pub fn score_labelled(
     model: &dyn AnyModel,
     features: &[String],
@@ -55,26 +216,30 @@ pub fn score_labelled(
     delimiter: Option<u8>,
     quiet: bool,
 ) -> Result<Scored> {
-    let opts = CsvOptions {
-        delimiter,
-        columns: Some(features.to_vec()),
+    let spec = StreamSpec {
+        features: features.to_vec(),
+        mode_column: None,
+        label_column: Some(label_column.to_string()),
         timestamp,
-        label: Some(label_column.to_string()),
-        skip_bad_rows: false,
-        allow_missing: true,
+        delimiter,
         quiet,
     };
-    let mut reader = Reader::open(path, &opts)?;
-    let mut rp = Replayer::new(model);
-    let mut x = vec![0.0f32; features.len()];
+    score_stream(Replayer::new(model), path, &spec)
+}
+
+/// Replay a labelled stream through `rp` (for a blob, [`Replayer::from_blob`]: window, bank,
+/// alarm and drift as on the device). `spec.label_column` must be set.
+pub fn score_stream(mut rp: Replayer<'_>, path: &Path, spec: &StreamSpec) -> Result<Scored> {
+    anyhow::ensure!(
+        spec.label_column.is_some(),
+        "an evaluation needs a label column"
+    );
     let (mut rows, mut labels) = (Vec::new(), Vec::new());
-    while let Some(row) = reader.next_row()? {
-        for (d, s) in x.iter_mut().zip(row.values) {
-            *d = to_device(*s);
-        }
-        labels.push(row.label.unwrap_or(false));
-        rows.push(rp.step(&x));
-    }
+    replay_stream(&mut rp, path, spec, |row, label| {
+        labels.push(label.unwrap_or(false));
+        rows.push(row);
+        Ok(())
+    })?;
     anyhow::ensure!(
         !rows.is_empty(),
         "{}: no readings to evaluate",
