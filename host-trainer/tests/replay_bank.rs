@@ -190,8 +190,8 @@ fn check_rows(text: &str, want: &[ellipsoid_core::TrackStep<4>]) {
             "drift_at_bound",
             "c_flow",
             "c_head",
-            "c_diff_flow",
-            "c_diff_head"
+            "c_Δflow",
+            "c_Δhead"
         ]
     );
     let rows: Vec<csv::StringRecord> = rdr.records().map(Result::unwrap).collect();
@@ -494,7 +494,7 @@ fn inspect_shows_a_bank() {
         "mode: nearest".into(),
         "window: the mean of the last 3 reading(s), and the first differences".into(),
         "drift: on, rate 0.2 (half-life 3.1 readings)".into(),
-        "feature_0 0.3, feature_1 0.3, diff_feature_0 1, diff_feature_1 1".into(),
+        "feature_0 0.3, feature_1 0.3, Δfeature_0 1, Δfeature_1 1".into(),
         "mode 0: alarm when d² > 9, clear when d² < 4.5".into(),
         "mode 1: alarm when d² > 12, clear when d² < 6".into(),
         "model id 0x01020304, sequence 7".into(),
@@ -541,4 +541,86 @@ fn inspect_shows_a_bank() {
         .assert()
         .success();
     assert_eq!(std::fs::read(&hex).unwrap(), bytes);
+}
+
+/// A model card beside the blob, as `fit` writes one for a bank (its fields from JSON, so that
+/// the test does not depend on every field the card may gain).
+fn write_card(blob_path: &Path, mode_column: Option<&str>, scored: &[&str]) {
+    let bytes = std::fs::read(blob_path).unwrap();
+    let crc = ellipsoid_trainer::data::card::blob_crc(&bytes);
+    let features: Vec<String> = NAMES.iter().map(|s| s.to_string()).collect();
+    let digest = ellipsoid_trainer::data::card::digest_with_mode(crc, &features, &[], mode_column);
+    let mut card = serde_json::json!({
+        "kind": "ellipsoid-model-card",
+        "version": 3,
+        "features": features,
+        "log_features": [],
+        "blob_crc": crc,
+        "blob_len": bytes.len(),
+        "names_digest": digest,
+        "threshold_method": "hotelling",
+        "alpha": 1e-4,
+        "rate_hz": 1.0,
+        "trained_on": "base.csv",
+        "window": 3,
+        "differences": true,
+        "scored_features": scored,
+    });
+    if let Some(m) = mode_column {
+        card["mode_column"] = m.into();
+        card["select"] = "known".into();
+    }
+    let path = ellipsoid_trainer::data::card::ModelCard::path_for(blob_path);
+    std::fs::write(path, serde_json::to_string_pretty(&card).unwrap()).unwrap();
+}
+
+#[test]
+fn the_card_names_the_mode_column_and_the_scored_values() {
+    let c = setup(ModeSelect::Known, true);
+    write_card(
+        &c.blob,
+        Some("op_mode"),
+        &["flow", "head", "d_flow", "d_head"],
+    );
+    // No --features and no --mode-column: both come from the card.
+    ellipsoid()
+        .args(["replay", "--model", c.blob.to_str().unwrap()])
+        .args(["--input", c.input.to_str().unwrap()])
+        .args(["--out", c.out.to_str().unwrap(), "--quiet"])
+        .assert()
+        .success();
+    let text = std::fs::read_to_string(&c.out).unwrap();
+    assert!(
+        text.starts_with(
+            "index,d2,d2_bits,verdict,alarm,fault,event,top_feature,mode,drift_at_bound,\
+             c_flow,c_head,c_d_flow,c_d_head\n"
+        ),
+        "{}",
+        &text[..120]
+    );
+    // The rows are the direct loop's (the header is the only difference from --features).
+    let want = direct(ModeSelect::Known, true);
+    let renamed = text.replacen("c_d_flow,c_d_head", "c_Δflow,c_Δhead", 1);
+    check_rows(&renamed, &want);
+    // --mode-column, when given, is used instead of the card's (here a feature: refused).
+    ellipsoid()
+        .args(["replay", "--model", c.blob.to_str().unwrap()])
+        .args(["--input", c.input.to_str().unwrap()])
+        .args(["--out", c.out.to_str().unwrap(), "--quiet"])
+        .args(["--mode-column", "head"])
+        .assert()
+        .failure()
+        .stderr(predicate::str::contains("is one of the model's features"));
+    // inspect names the scored values by the card and checks its names against the digest.
+    ellipsoid()
+        .args(["inspect", c.blob.to_str().unwrap()])
+        .assert()
+        .success()
+        .stdout(predicate::str::contains(
+            "matches the card's features, in order",
+        ))
+        .stdout(predicate::str::contains(
+            "mode: known, told with each reading (0 to 1)",
+        ))
+        .stdout(predicate::str::contains("d_head"));
 }

@@ -159,6 +159,16 @@ impl LoadedModel {
         })
     }
 
+    /// The names of the scored values: the card's, when it lists them (a window with
+    /// differences), else the features themselves (and `Δ<feature>` for differences).
+    pub fn scored_features(&self) -> Vec<String> {
+        let m = self.bank().map_or(self.features.len(), |b| b.m);
+        match &self.card {
+            Some(c) if c.scored_features.len() == m => c.scored_features.clone(),
+            _ => crate::device::replay::scored_names(&self.features, m),
+        }
+    }
+
     /// The bank of a format 2 blob.
     pub fn bank(&self) -> Option<&BankView> {
         match &self.decoded {
@@ -248,7 +258,7 @@ impl LoadedModel {
                 .ok_or_else(|| {
                     anyhow::anyhow!(
                         "{}: a known-mode bank is told each reading's mode: give --mode-column \
-                     (the card beside the blob names none)",
+                     (no model card beside the blob names one)",
                         path.display()
                     )
                 }),
@@ -266,11 +276,9 @@ impl LoadedModel {
     }
 }
 
-/// The card's mode column (known-mode banks). The card has no such field yet (fit does not
-/// write known-mode banks yet), so a known-mode bank needs `--mode-column` for now.
+/// The card's mode column (known-mode banks).
 fn card_mode_column(card: Option<&ModelCard>) -> Option<String> {
-    let _ = card;
-    None
+    card.and_then(|c| c.mode_column.clone())
 }
 
 /// Where two name lists differ, position by position (1-based), for an error message.

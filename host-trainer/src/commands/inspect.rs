@@ -209,7 +209,10 @@ fn show_bank(
         Some(c) => c.features.clone(),
         None => (0..b.n).map(|i| format!("feature_{i}")).collect(),
     };
-    let names = scored_names(&raw, b.m);
+    let names = match &card {
+        Some(c) if c.scored_features.len() == b.m => c.scored_features.clone(),
+        _ => scored_names(&raw, b.m),
+    };
     let logs: Vec<bool> = (0..b.n).map(|i| (b.log_mask >> i) & 1 == 1).collect();
     let select = match b.select {
         ModeSelect::Nearest => "nearest",

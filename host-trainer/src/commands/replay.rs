@@ -52,7 +52,7 @@ pub fn run(a: &ReplayArgs) -> Result<()> {
         .map_err(|e| anyhow::anyhow!("{}: {e}", a.model.model.display()))?;
     let mut counts = (0u64, 0u64, 0u64);
     output::write_atomic(&a.out, |w| {
-        let mut sink = CsvSink::for_replayer(w, &loaded.features, &rp)?;
+        let mut sink = CsvSink::for_replayer(w, &loaded.scored_features(), &rp)?;
         replay_stream(&mut rp, &a.model.input, &spec, |r, _| {
             counts.0 += 1;
             counts.1 += u64::from(r.above());

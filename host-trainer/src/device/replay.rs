@@ -210,11 +210,11 @@ impl<'a> Replayer<'a> {
 }
 
 /// The names of the scored features: the raw names, then (with differences, `m = 2 n`)
-/// `diff_<name>` for each first difference.
+/// `Δ<name>` for each first difference, as the model card names them.
 pub fn scored_names(raw: &[String], m: usize) -> Vec<String> {
     let mut names = raw.to_vec();
-    if m == 2 * raw.len() {
-        names.extend(raw.iter().map(|f| format!("diff_{f}")));
+    if m == 2 * raw.len() && m > 0 {
+        names.extend(raw.iter().map(|f| format!("Δ{f}")));
     }
     names
 }
@@ -238,11 +238,17 @@ impl<W: Write> CsvSink<W> {
         Self::with_layout(w, features, false)
     }
 
-    /// Write the header for what `rp` replays: the raw feature names `raw` become the names of
-    /// its scored features ([`scored_names`]), and a bank gets the `mode` and `drift_at_bound`
-    /// columns.
-    pub fn for_replayer(w: W, raw: &[String], rp: &Replayer<'_>) -> Result<Self> {
-        Self::with_layout(w, &scored_names(raw, rp.scored_len()), rp.is_bank())
+    /// Write the header for what `rp` replays: `names` are its scored features' names (the
+    /// card's), or the raw feature names, which then become them ([`scored_names`]); a bank gets
+    /// the `mode` and `drift_at_bound` columns.
+    pub fn for_replayer(w: W, names: &[String], rp: &Replayer<'_>) -> Result<Self> {
+        let m = rp.scored_len();
+        let names = if names.len() == m {
+            names.to_vec()
+        } else {
+            scored_names(names, m)
+        };
+        Self::with_layout(w, &names, rp.is_bank())
     }
 
     fn with_layout(w: W, features: &[String], bank: bool) -> Result<Self> {
@@ -592,7 +598,7 @@ mod tests {
         assert_eq!(
             lines[0],
             "index,d2,d2_bits,verdict,alarm,fault,event,top_feature,mode,drift_at_bound,\
-             c_a,c_b,c_diff_a,c_diff_b"
+             c_a,c_b,c_Δa,c_Δb"
         );
         // The window of 3 is not whole for the first two readings: faults, the device's own
         // (each with a fault event: the cause, readings missing, changes).
