@@ -14,14 +14,15 @@
 //!   ([`ReadingFault::UnknownMode`]).
 //! * **Nearest** ([`ModeSelect::Nearest`]): `k*` is the mode with the smallest
 //!   `rₖ = d²ₖ / alarmₖ` (an `f32` division), the mode in whose alarm ellipsoid the reading lies
-//!   deepest. Ties go first to a mode the reading is inside (`d²ₖ ≤ alarmₖ`: two ratios can
-//!   round to the same `1.0` when one `d²` is just inside and one just outside its limit), then
-//!   to the lowest `k`.
+//!   deepest; ties go to the lowest `k`. A mode whose d² is not finite is never chosen; if no
+//!   mode's is, the reading is a fault ([`ReadingFault::Overflow`]).
 //!
 //! The verdict is `Above` iff `d²_{k*} > alarm_{k*}`, and the alarm machine's "below" is
 //! `d²_{k*} < clear_{k*}`. So a reading is flagged **only when it lies outside every mode's
-//! alarm ellipsoid**: if any mode has `d²ₖ ≤ alarmₖ`, then `rₖ ≤ 1`, and the rule picks a mode
-//! with `r ≤ 1` that the reading is inside.
+//! alarm ellipsoid**: in `f32`, `rₖ ≤ 1` exactly when `d²ₖ ≤ alarmₖ` (rounding is monotone, and
+//! for `d² > alarm` the exact quotient is at least `1 + ulp(alarm)/alarm > 1 + 2⁻²⁴`, past the
+//! midpoint between 1 and the next float, so it never rounds down to 1), hence if any mode has
+//! the reading inside, the chosen mode has `r ≤ 1` and the reading inside it too.
 //!
 //! The mode weights and the log-determinants of the covariances are deliberately **not** part of
 //! the rule (it is not the most probable mode of the mixture). For a reading drawn from mode `k`
@@ -718,13 +719,17 @@ impl<'a, const N: usize, const M: usize> FlashBank<'a, N, M> {
         t: &[f32; M],
         mode: Option<u8>,
     ) -> Result<(BankScore, Judgement), ReadingFault> {
-        let k = match self.select {
+        // Each mode's d² is computed once: the nearest rule keeps the winner's.
+        let (k, d2) = match self.select {
             ModeSelect::Known => match mode {
-                Some(k) if usize::from(k) < self.modes() => usize::from(k),
+                Some(k) if usize::from(k) < self.modes() => {
+                    let k = usize::from(k);
+                    (k, self.d2(k, t))
+                }
                 given => return Err(ReadingFault::UnknownMode { given }),
             },
             ModeSelect::Nearest => {
-                let mut best: Option<(usize, f32, bool)> = None;
+                let mut best: Option<(usize, f32, f32)> = None;
                 for k in 0..self.modes() {
                     let d2 = self.d2(k, t);
                     if !d2.is_finite() {
@@ -732,22 +737,17 @@ impl<'a, const N: usize, const M: usize> FlashBank<'a, N, M> {
                     }
                     let alarm = self.view(k).map_or(f32::NAN, |v| v.alarm());
                     let r = d2 / alarm;
-                    let above = d2 > alarm;
-                    let better = match best {
-                        None => true,
-                        Some((_, br, babove)) => r < br || (r == br && babove && !above),
-                    };
-                    if better {
-                        best = Some((k, r, above));
+                    // Strictly smaller: a tie keeps the lower mode.
+                    if best.is_none_or(|(_, br, _)| r < br) {
+                        best = Some((k, r, d2));
                     }
                 }
                 match best {
-                    Some((k, _, _)) => k,
+                    Some((k, _, d2)) => (k, d2),
                     None => return Err(ReadingFault::Overflow),
                 }
             }
         };
-        let d2 = self.d2(k, t);
         if !d2.is_finite() {
             return Err(ReadingFault::Overflow);
         }
@@ -1167,5 +1167,25 @@ mod tests {
         }
         assert_eq!(blob::floats_len(16), 744);
         assert_eq!(blob::floats_len(32), 2504);
+    }
+
+    /// The ratio test of the nearest rule keeps the limit exact in `f32`: `d² / alarm ≤ 1`
+    /// exactly when `d² ≤ alarm`, for d² one float either side of the limit, at limits of every
+    /// magnitude and mantissa (the argument in the module docs).
+    #[test]
+    fn the_ratio_is_at_most_one_exactly_when_inside() {
+        let mut alarm = 1.0e-30f32;
+        let mut n = 0;
+        while alarm < 1.0e30 {
+            for a in [alarm, alarm * 1.999_999_9, alarm * 1.5, alarm * 1.000_000_1] {
+                let up = f32::from_bits(a.to_bits() + 1);
+                let down = f32::from_bits(a.to_bits() - 1);
+                assert!(up / a > 1.0, "{a}");
+                assert!(a / a <= 1.0 && down / a <= 1.0, "{a}");
+                n += 1;
+            }
+            alarm *= 1.37;
+        }
+        assert!(n > 100);
     }
 }

@@ -567,6 +567,36 @@ mod tests {
         assert_eq!(t.shift()[0], 0.75);
     }
 
+    /// The fullest step a bank makes: a fault clears and the drift reaches its bound on the same
+    /// reading, two events in the step's capacity of two, in that order. And a reset clears a
+    /// latched alarm with its event, leaving the drift flag.
+    #[test]
+    fn fault_cleared_and_drift_fit_in_one_step() {
+        let latch = AlarmPolicy {
+            raise_after: 1,
+            clear_after: 1,
+            latch: true,
+        };
+        let blob = drift_bank(0.9, 0.5, latch);
+        let mut t = Tracker::<1, 1>::from_blob(&blob).unwrap();
+        assert!(t.step(&[f32::NAN], None).step.fault);
+        let s = t.step(&[2.0], None);
+        let kinds: Vec<EventKind> = s.step.events.iter().map(|e| e.kind).collect();
+        assert_eq!(
+            kinds,
+            [EventKind::FaultCleared, EventKind::Drift { feature: 0 }]
+        );
+        assert!(s.step.events.iter().all(|e| e.index == 1));
+        assert_eq!(t.shift()[0], 0.5);
+        // Latched by a reading far above (d² = (50 − 0.5)² > 100), then reset by hand.
+        assert!(t.step(&[50.0], None).step.alarm);
+        assert!(t.step(&[0.5], None).step.alarm);
+        let r = t.reset();
+        assert!(!r.alarm);
+        assert_eq!(r.events[0].kind, EventKind::Reset);
+        assert!(t.drift_at_bound() && t.step(&[0.5], None).drift_at_bound);
+    }
+
     /// The chosen mode's contributions are `Model::explain`'s for that mode's single model, bit
     /// for bit, and they sum to d².
     #[test]

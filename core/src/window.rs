@@ -334,6 +334,28 @@ mod tests {
         assert_eq!(w.push(&[1.0, 4.0]).unwrap(), [1.0, 2.0, 0.0, 3.0]);
     }
 
+    /// The order is pinned: oldest first, for the readings (1, 1, 1e8, −1e8) the sum is
+    /// `((1 + 1) + 1e8) − 1e8 = 0` in `f32` (1e8 + 2 rounds to 1e8, whose spacing is 8), so the
+    /// mean is 0; newest first it would be `((−1e8 + 1e8) + 1) + 1 = 2` (mean 0.5, also the exact
+    /// value), and the oldest then the newest `((1 − 1e8) + 1e8) + 1 = 1` (0.25).
+    #[test]
+    fn the_sum_runs_from_the_oldest_reading() {
+        let mut w = Window::<1, 1>::new(spec(4, false), 0).unwrap();
+        let four = [1.0f32, 1.0, 1.0e8, -1.0e8];
+        for x in &four[..3] {
+            assert!(w.push(&[*x]).is_err());
+        }
+        assert_eq!(w.push(&[four[3]]).unwrap(), [0.0]);
+        // The ring wraps: many readings later the same four give the same bits.
+        for _ in 0..13 {
+            let _ = w.push(&[3.0]);
+        }
+        for x in &four[..3] {
+            let _ = w.push(&[*x]);
+        }
+        assert_eq!(w.push(&[four[3]]).unwrap(), [0.0]);
+    }
+
     #[test]
     fn differences_with_a_window_of_one_need_two_readings() {
         let mut w = Window::<1, 2>::new(spec(1, true), 0).unwrap();

@@ -443,3 +443,43 @@ proptest! {
         }
     }
 }
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(64))]
+
+    /// A version 2 bank of one mode, a window of one and no drift scores as `Model::score` on the
+    /// same parameters, bit for bit (the mode, d² bits, verdict and fault).
+    #[test]
+    fn a_bank_of_one_is_model_score(
+        p in params::<8>(),
+        xs in proptest::collection::vec(proptest::array::uniform::<_, 8>(
+            prop_oneof![8 => -2.0e3f32..2.0e3, 1 => Just(f32::NAN), 1 => Just(0.0f32)]), 1..20),
+    ) {
+        let mode = ModeParams {
+            offset: p.preprocess.offset,
+            scale: p.preprocess.scale,
+            mean: p.mean,
+            w: p.w,
+            thresholds: p.thresholds,
+        };
+        let modes = [mode];
+        let bp = BankParams::<8, 8> {
+            meta: p.meta,
+            log_mask: p.preprocess.log_mask,
+            select: ModeSelect::Nearest,
+            modes: &modes,
+            window: WindowSpec::single(),
+            drift: None,
+            policy: p.policy,
+            names_digest: 7,
+        };
+        let bytes = encode_bank(&bp);
+        let mut t = Tracker::<8, 8>::from_blob(&bytes).unwrap();
+        let m = Model::new(p).unwrap();
+        for x in &xs {
+            let want = m.score(x).map(|s| (0u8, s.d2.to_bits(), s.verdict));
+            let got = t.step(x, None).score.map(|s| (s.mode, s.d2.to_bits(), s.verdict));
+            prop_assert_eq!(got, want);
+        }
+    }
+}
