@@ -293,33 +293,34 @@ impl Model {
         let p = self.features.len();
         let n = x.len() / p.max(1);
         let blob = &self.blob;
-        let out = py.detach(|| {
-            // The blob as the device runs it (the core's tracker), like `ellipsoid replay`.
-            let mut rp = Replayer::from_blob(blob).map_err(|e| anyhow!("{e}"))?;
-            let mut o = ReplayOut::with_capacity(n, p);
-            for r in x.chunks_exact(p) {
-                let row = rp.step(r);
-                o.index.push(row.index);
-                o.d2.push(row.d2().unwrap_or(f32::NAN));
-                o.d2_bits.push(row.d2().map_or(0, f32::to_bits));
-                o.verdict.push(match row.d2() {
-                    None => "fault",
-                    Some(_) if row.above() => "above",
-                    Some(_) => "below",
-                });
-                o.alarm.push(row.alarm);
-                o.fault.push(row.fault);
-                let events: Vec<&str> = row.events.iter().map(EventKind::name).collect();
-                o.event.push(events.join("+"));
-                o.top.push(row.top_feature());
-                match &row.contributions {
-                    Some(c) => o.contributions.extend_from_slice(c),
-                    None => o.contributions.extend(std::iter::repeat_n(f32::NAN, p)),
+        let out = py
+            .detach(|| {
+                // The blob as the device runs it (the core's tracker), like `ellipsoid replay`.
+                let mut rp = Replayer::from_blob(blob).map_err(|e| anyhow!("{e}"))?;
+                let mut o = ReplayOut::with_capacity(n, p);
+                for r in x.chunks_exact(p) {
+                    let row = rp.step(r);
+                    o.index.push(row.index);
+                    o.d2.push(row.d2().unwrap_or(f32::NAN));
+                    o.d2_bits.push(row.d2().map_or(0, f32::to_bits));
+                    o.verdict.push(match row.d2() {
+                        None => "fault",
+                        Some(_) if row.above() => "above",
+                        Some(_) => "below",
+                    });
+                    o.alarm.push(row.alarm);
+                    o.fault.push(row.fault);
+                    let events: Vec<&str> = row.events.iter().map(EventKind::name).collect();
+                    o.event.push(events.join("+"));
+                    o.top.push(row.top_feature());
+                    match &row.contributions {
+                        Some(c) => o.contributions.extend_from_slice(c),
+                        None => o.contributions.extend(std::iter::repeat_n(f32::NAN, p)),
+                    }
                 }
-            }
-            Ok::<_, anyhow::Error>(o)
-        })
-        .map_err(err)?;
+                Ok::<_, anyhow::Error>(o)
+            })
+            .map_err(err)?;
         let d = PyDict::new(py);
         d.set_item("index", out.index.into_pyarray(py))?;
         d.set_item("d2", out.d2.into_pyarray(py))?;
