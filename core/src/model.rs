@@ -118,14 +118,19 @@ pub struct Explained<const N: usize> {
 impl<const N: usize> Explained<N> {
     /// The feature with the largest contribution, and that contribution.
     pub fn top(&self) -> (usize, f32) {
-        let mut best = (0, f32::NEG_INFINITY);
-        for (i, c) in self.contributions.iter().enumerate() {
-            if *c > best.1 {
-                best = (i, *c);
-            }
-        }
-        best
+        top_of(&self.contributions)
     }
+}
+
+/// The largest contribution and its feature, the first on a tie: the one rule every form uses.
+pub(crate) fn top_of(contributions: &[f32]) -> (usize, f32) {
+    let mut best = (0, f32::NEG_INFINITY);
+    for (i, c) in contributions.iter().enumerate() {
+        if *c > best.1 {
+            best = (i, *c);
+        }
+    }
+    best
 }
 
 /// A validated model of `N` features, ready to score.

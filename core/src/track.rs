@@ -49,6 +49,17 @@ pub struct TrackStep<const M: usize> {
     pub drift_at_bound: bool,
 }
 
+impl<const M: usize> TrackStep<M> {
+    /// The feature with the largest contribution, by [`crate::Explained::top`]'s rule, when the
+    /// reading was scored and explained ([`Tracker::step_explained`]).
+    pub fn top(&self) -> Option<usize> {
+        match (&self.score, &self.contributions) {
+            (Ok(_), Some(c)) => Some(crate::model::top_of(c).0),
+            _ => None,
+        }
+    }
+}
+
 /// The device-side state of a model bank: window, alarm machine and drift shift over a
 /// [`FlashBank`]. `N` raw features a reading, `M` scored (`N`, or `2 N` with differences).
 #[derive(Clone, Debug, PartialEq)]

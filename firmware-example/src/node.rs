@@ -105,21 +105,7 @@ fn explain_bank<const N: usize, const M: usize>(
     x: &[f32; N],
     mode: Option<u8>,
 ) -> Option<usize> {
-    let t = tracker.step_explained(x, mode);
-    match (t.score, t.contributions) {
-        (Ok(b), Some(contributions)) => Some(
-            Explained {
-                score: Scored {
-                    d2: b.d2,
-                    verdict: b.verdict,
-                },
-                contributions,
-            }
-            .top()
-            .0,
-        ),
-        _ => None,
-    }
+    tracker.step_explained(x, mode).top()
 }
 
 /// Feed one score to the alarm state machine. Out of line, as [`score`], so that the image's

@@ -10,9 +10,7 @@ use ellipsoid_core::bank::{BankError, FlashBank, ModeSelect};
 use ellipsoid_core::blob;
 use ellipsoid_core::track::Tracker;
 use ellipsoid_core::window::{WindowError, WindowSpec};
-use ellipsoid_core::{
-    AlarmPolicy, DecodeError, Explained, ModelMeta, ReadingFault, Scored, Step, Verdict,
-};
+use ellipsoid_core::{AlarmPolicy, DecodeError, ModelMeta, ReadingFault, Step, Verdict};
 
 use crate::device::dims::ParamsView;
 
@@ -64,20 +62,7 @@ impl<const N: usize, const M: usize> AnyTracker for Tracker<'_, N, M> {
     fn step(&mut self, x: &[f32], mode: Option<u8>) -> TrackRow {
         let s = Tracker::step_explained(self, &fixed::<N>(x), mode);
         // The core's own rule for the largest contribution (`Explained::top`).
-        let top = match (&s.score, s.contributions) {
-            (Ok(b), Some(contributions)) => Some(
-                Explained {
-                    score: Scored {
-                        d2: b.d2,
-                        verdict: b.verdict,
-                    },
-                    contributions,
-                }
-                .top()
-                .0,
-            ),
-            _ => None,
-        };
+        let top = s.top();
         TrackRow {
             score: s.score.map(|b| (b.mode, b.d2, b.verdict)),
             step: s.step,
