@@ -545,6 +545,26 @@ pub struct DriftInfo {
     pub sd: Vec<f64>,
     /// The bound of each scored feature, model units (`bound_sigma · sd`).
     pub bound: Vec<f64>,
+    /// The factor every mode's alarm and clear limits were widened by ([`drift_widening`]).
+    pub widen: f64,
+}
+
+/// How much the drift widens the spread of a healthy reading about its shifted centre, and so
+/// the factor each mode's limits are multiplied by: `2 / (2 − r)` at rate `r`.
+///
+/// The shift is an exponentially weighted mean of past deviations, so it follows their noise as
+/// well as the slow drift. For readings whose deviations from the centre form an AR(1) series
+/// with lag-1 autocorrelation `ρ`, variance `σ²` and `a = 1 − r`, the shift's steady-state
+/// variance is `σ² r² (1 + aρ) / ((1 − a²)(1 − aρ))` and its covariance with the next reading
+/// `σ² r ρ / (1 − aρ)`, so `t − s − c` has variance `σ² (1 + r (1 − (2 + a) ρ) / ((1 + a)(1 − aρ)))`.
+/// That is largest at `ρ = 0` (it falls as `ρ` grows), where it is `σ² · 2 / (2 − r)`: d² then
+/// scales by the same factor in every direction, and widening the limits by it keeps each
+/// mode's false-alarm promise for every `ρ ≥ 0`. Positively correlated readings, the common case
+/// for sensors, get a little more margin than they need. `tests/drift_promise.rs` checks it
+/// on white-noise readings through the core's tracker (a half-life of 2 readings doubles the
+/// false alarms without it). At a half-life of 100 readings the factor is 1.0035.
+pub fn drift_widening(rate: f64) -> f64 {
+    2.0 / (2.0 - rate)
 }
 
 /// Everything a bank's training works out, before the blob.
@@ -694,6 +714,14 @@ pub fn fit_bank(a: &TrainSpec, b: &BankSpec) -> Result<BankFit> {
             trained,
         });
     }
+    let drift_widen = b.drift_rate().map(drift_widening);
+    if let Some(c) = drift_widen {
+        for bm in &mut out_modes {
+            let th = &mut bm.trained.thresholds;
+            th.alarm = (f64::from(th.alarm) * c) as f32;
+            th.clear = (f64::from(th.clear) * c) as f32;
+        }
+    }
     let drift = b.drift_half_life.map(|h| {
         // Pooled within-mode variance: Σ (n_k − 1) s²_k / Σ (n_k − 1), in model units.
         let mut num = vec![0.0; m];
@@ -713,6 +741,7 @@ pub fn fit_bank(a: &TrainSpec, b: &BankSpec) -> Result<BankFit> {
             bound_sigma: b.drift_bound,
             bound: sd.iter().map(|s| s * b.drift_bound).collect(),
             sd,
+            widen: drift_widen.expect("drift is on"),
         }
     });
     Ok(BankFit {

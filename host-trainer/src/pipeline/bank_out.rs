@@ -259,6 +259,14 @@ pub fn bank_summary_text(t: &BankTrained) -> String {
         for ((name, b), sd) in f.scored.iter().zip(&d.bound).zip(&d.sd) {
             let _ = writeln!(s, "    {name}: ±{b:.6} (σ = {sd:.6})");
         }
+        let _ = writeln!(
+            s,
+            "  The shift follows the readings' noise too, which widens their spread about the \
+             centre by up to 2 / (2 − rate) = {:.6} in variance: the alarm and clear limits in the \
+             table above are the modes' own limits (in each mode's section below) times that factor, \
+             so the figures in the table still hold.",
+            d.widen
+        );
     }
     for (k, md) in f.modes.iter().enumerate() {
         let _ = writeln!(s, "\n── Mode {k} ──");
