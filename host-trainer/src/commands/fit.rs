@@ -150,7 +150,9 @@ pub struct FitArgs {
     pub no_fpu: bool,
     /// Operating modes: a bank of this many Gaussians (1 to 8), the device scoring each reading
     /// against the nearest (in d² over each mode's alarm limit); `auto` chooses the count by BIC.
-    /// The modes are found by EM (a Gaussian mixture) on the standardised baseline.
+    /// The modes are found by EM (a Gaussian mixture) on the standardised baseline. `auto` skips
+    /// a count whose modes could not be fitted one by one (a mode with fewer samples than its
+    /// parameters, or a feature constant inside it) and says which and why; `K` is refused then.
     #[arg(long, default_value = "1", value_name = "K|auto")]
     pub modes: ModeCount,
     /// With `--modes auto`: the most modes tried.

@@ -423,25 +423,73 @@ pub fn choose_modes(
     max_k: usize,
     opts: &MixtureOptions,
 ) -> Result<(Mixture, Vec<(usize, f64)>)> {
+    let (m, tried, _) = choose_modes_checked(rows, max_k, opts, |_| Ok(()))?;
+    Ok((m, tried))
+}
+
+/// A mode count that [`choose_modes_checked`] did not compare, and why.
+#[derive(Clone, Debug, PartialEq, serde::Serialize)]
+pub struct SkippedK {
+    /// The mode count.
+    pub k: usize,
+    /// Why: EM failed, or `admissible` refused the mixture.
+    pub reason: String,
+}
+
+/// What [`choose_modes_checked`] returns: the mixture kept, the BIC of each mode count compared,
+/// and the mode counts skipped.
+pub type ModeChoice = (Mixture, Vec<(usize, f64)>, Vec<SkippedK>);
+
+/// [`choose_modes`], comparing only the mixtures `admissible` accepts: a `k > 1` whose EM fails
+/// or whose mixture `admissible` refuses (with a reason) is skipped, so BIC never picks a
+/// solution the caller cannot use. `k = 1` is always compared (one mode is the plain model, and
+/// the caller's own checks speak for it). Returns the mixture kept, the BIC of each `k`
+/// compared, and the `k` skipped with their reasons.
+pub fn choose_modes_checked<F>(
+    rows: &[Vec<f64>],
+    max_k: usize,
+    opts: &MixtureOptions,
+    mut admissible: F,
+) -> Result<ModeChoice>
+where
+    F: FnMut(&Mixture) -> std::result::Result<(), String>,
+{
     ensure!(max_k >= 1, "at least one mode must be allowed");
     ensure!(!rows.is_empty(), "no rows to fit a mixture to");
     let n = rows.len();
     let d = rows[0].len();
     let mut tried = Vec::new();
+    let mut skipped = Vec::new();
     let mut best: Option<(f64, Mixture)> = None;
     for k in 1..=max_k {
         if k > 1 && n_parameters(k, d) >= n {
             break;
         }
-        let m = fit_mixture(rows, k, opts)?;
+        let m = match fit_mixture(rows, k, opts) {
+            Ok(m) => m,
+            Err(e) if k > 1 => {
+                skipped.push(SkippedK {
+                    k,
+                    reason: format!("EM failed: {e:#}"),
+                });
+                continue;
+            }
+            Err(e) => return Err(e),
+        };
+        if k > 1 {
+            if let Err(reason) = admissible(&m) {
+                skipped.push(SkippedK { k, reason });
+                continue;
+            }
+        }
         let bic = m.bic(n);
         tried.push((k, bic));
         if best.as_ref().is_none_or(|(b, _)| bic < *b) {
             best = Some((bic, m));
         }
     }
-    let (_, m) = best.expect("k = 1 is always tried");
-    Ok((m, tried))
+    let (_, m) = best.expect("k = 1 is always compared");
+    Ok((m, tried, skipped))
 }
 
 fn n_parameters(k: usize, d: usize) -> usize {
@@ -657,5 +705,39 @@ mod tests {
         assert!(fit_mixture(&[vec![1.0], vec![2.0]], 3, &o).is_err());
         assert!(fit_mixture(&[vec![1.0], vec![2.0, 3.0]], 1, &o).is_err());
         assert!(fit_mixture(&[vec![1.0], vec![f64::NAN]], 1, &o).is_err());
+    }
+
+    #[test]
+    fn a_refused_mode_count_is_skipped_with_its_reason() {
+        let rows = two_modes(7);
+        // Refuse every mixture of more than two modes: BIC compares K = 1, 2 only.
+        let (m, tried, skipped) = choose_modes_checked(&rows, 4, &MixtureOptions::default(), |m| {
+            if m.k() > 2 {
+                Err(format!("{} modes refused", m.k()))
+            } else {
+                Ok(())
+            }
+        })
+        .unwrap();
+        assert_eq!(m.k(), 2);
+        assert_eq!(tried.iter().map(|t| t.0).collect::<Vec<_>>(), [1, 2]);
+        assert_eq!(
+            skipped,
+            [
+                SkippedK {
+                    k: 3,
+                    reason: "3 modes refused".into()
+                },
+                SkippedK {
+                    k: 4,
+                    reason: "4 modes refused".into()
+                }
+            ]
+        );
+        // K = 1 is compared even when the check would refuse everything.
+        let (m, tried, skipped) =
+            choose_modes_checked(&rows, 3, &MixtureOptions::default(), |_| Err("no".into()))
+                .unwrap();
+        assert_eq!((m.k(), tried.len(), skipped.len()), (1, 1, 2));
     }
 }

@@ -36,7 +36,8 @@ use ellipsoid_core::ReadingFault;
 use crate::data::ingest::{self, CsvOptions, Layout, Reader};
 use crate::device::replay::to_device;
 use crate::fit::memory::{fit_rows, Table};
-use crate::fit::mixture::{choose_modes, fit_mixture, Mixture, MixtureOptions};
+use crate::fit::mixture::{choose_modes_checked, fit_mixture, Mixture, MixtureOptions, SkippedK};
+use crate::fit::{Shrinkage, COLLINEAR_PIVOT2, CONSTANT_REL_SD};
 use crate::pipeline::train::{train_with, TrainSpec, Trained};
 use crate::stats::threshold::Method;
 
@@ -445,8 +446,10 @@ fn model_space(values: &[f64], log_mask: u32) -> Vec<f64> {
 /// How the modes were found.
 #[derive(Clone, Debug, Serialize)]
 pub struct ModeSearch {
-    /// The BIC of each mode count tried (nearest mode, `auto`).
+    /// The BIC of each mode count compared (nearest mode, `auto`).
     pub bic: Vec<(usize, f64)>,
+    /// Mode counts `auto` did not compare, and why ([`PartitionCheck`]).
+    pub skipped: Vec<SkippedK>,
     /// EM iterations of the mixture kept, and whether it converged.
     pub iterations: usize,
     /// Whether EM met its tolerance.
@@ -455,12 +458,176 @@ pub struct ModeSearch {
     pub rows: usize,
 }
 
-/// Each sample's mode, and how they were found.
+/// Mode numbers of a mixture's modes: by weight, heaviest first (ties: EM's order).
+fn ranks(mix: &Mixture) -> Vec<u8> {
+    let mut order: Vec<usize> = (0..mix.k()).collect();
+    order.sort_by(|a, b| mix.weights[*b].total_cmp(&mix.weights[*a]));
+    let mut rank = vec![0u8; mix.k()];
+    for (r, k) in order.iter().enumerate() {
+        rank[*k] = r as u8;
+    }
+    rank
+}
+
+/// Whether a split of the samples into modes can be fitted mode by mode: the single-model
+/// pipeline's own refusals, found before it runs, so that `--modes auto` skips such a mode count
+/// and an explicit `--modes K` is refused with the mode and the feature named.
+///
+/// Refused (`--modes K` is an error naming the mode and the feature, `auto` skips K):
+/// * fewer samples to fit (after the mode's hold-out) than the `m + 2` a mode needs;
+/// * a feature constant within the mode's fitted samples, or varying by at most
+///   [`CONSTANT_REL_SD`] of its magnitude (the pipeline's constant rule);
+/// * a feature whose within-mode variance, in the standardised units EM works in, is at most
+///   EM's covariance regularisation ([`MixtureOptions::reg_covar`]): along that feature the
+///   mode's spread is the regulariser's, not the data's (a degenerate solution of EM, whose
+///   likelihood, hence BIC, is as large as the regulariser lets it be), and the pipeline would
+///   fit it as a nearly singular covariance;
+/// * without shrinkage, a feature that is a linear combination of the ones before it within the
+///   mode (the pipeline's [`COLLINEAR_PIVOT2`] rule on the mode's correlation matrix).
+///
+/// Refused by `auto` only: fewer fitted samples than the mode's own parameters,
+/// `m + m(m+1)/2` (a mean and a full covariance), less than one sample a parameter. Common
+/// practice; it is the per-mode form of the rule [`choose_modes_checked`] applies to the whole
+/// mixture (no more parameters than rows). An explicit `--modes K` is held only to `m + 2`.
+pub struct PartitionCheck<'a> {
+    /// Each sample in model space (log features ln-transformed).
+    pub t: &'a [Vec<f64>],
+    /// Each sample standardised as EM saw it.
+    pub z: &'a [Vec<f64>],
+    /// Scored-vector names.
+    pub names: &'a [String],
+    /// The hold-out share each mode keeps back (the last of its samples).
+    pub holdout: f64,
+    /// Whether the pipeline shrinks the covariance (then collinearity is no refusal).
+    pub shrinkage: Shrinkage,
+    /// EM's covariance regularisation.
+    pub reg_covar: f64,
+}
+
+impl PartitionCheck<'_> {
+    /// The first problem of the split `modes` into `k` modes, or `None`. `per_parameter` adds
+    /// the refusal of `auto` only (fewer samples than parameters).
+    pub fn problem(&self, modes: &[u8], k: usize, per_parameter: bool) -> Option<String> {
+        let m = self.names.len();
+        let need = m + 2;
+        let own = m + m * (m + 1) / 2;
+        let mut per_mode: Vec<Vec<usize>> = vec![Vec::new(); k];
+        for (i, md) in modes.iter().enumerate() {
+            per_mode[usize::from(*md)].push(i);
+        }
+        for (md, idx) in per_mode.iter().enumerate() {
+            let fitted =
+                idx.len() - ((self.holdout * idx.len() as f64).round() as usize).min(idx.len());
+            if fitted < need {
+                return Some(format!(
+                    "mode {md} has {} sample(s), {fitted} to fit after the hold-out; a mode of {m} \
+                     scored values needs at least {need}",
+                    idx.len()
+                ));
+            }
+            if per_parameter && fitted < own {
+                return Some(format!(
+                    "mode {md} has {fitted} sample(s) to fit, fewer than its own {own} parameters \
+                     (a mean and a covariance of {m} scored values)"
+                ));
+            }
+            let rows = &idx[..fitted];
+            let nf = fitted as f64;
+            let mean: Vec<f64> = (0..m)
+                .map(|j| rows.iter().map(|&i| self.t[i][j]).sum::<f64>() / nf)
+                .collect();
+            let mut cov = vec![0.0; m * m];
+            for &i in rows {
+                let x = &self.t[i];
+                for a in 0..m {
+                    let da = x[a] - mean[a];
+                    for b in 0..=a {
+                        cov[a * m + b] += da * (x[b] - mean[b]);
+                    }
+                }
+            }
+            for a in 0..m {
+                for b in 0..=a {
+                    let v = cov[a * m + b] / (nf - 1.0);
+                    cov[a * m + b] = v;
+                    cov[b * m + a] = v;
+                }
+            }
+            for j in 0..m {
+                let sd = cov[j * m + j].sqrt();
+                let name = &self.names[j];
+                if sd == 0.0 {
+                    return Some(format!(
+                        "mode {md}: `{name}` is constant within the mode (all {fitted} samples to \
+                         fit are {})",
+                        mean[j]
+                    ));
+                }
+                if sd <= CONSTANT_REL_SD * mean[j].abs() {
+                    return Some(format!(
+                        "mode {md}: `{name}` varies within the mode by only {:.1e} of its \
+                         magnitude, which f32 cannot resolve",
+                        sd / mean[j].abs()
+                    ));
+                }
+                {
+                    let zm = rows.iter().map(|&i| self.z[i][j]).sum::<f64>() / nf;
+                    let zv = rows
+                        .iter()
+                        .map(|&i| (self.z[i][j] - zm).powi(2))
+                        .sum::<f64>()
+                        / (nf - 1.0);
+                    if zv <= self.reg_covar {
+                        return Some(format!(
+                            "mode {md}: `{name}` is almost constant within the mode (variance \
+                             {zv:.1e} of its baseline variance, at most EM's regularisation {:.0e})",
+                            self.reg_covar
+                        ));
+                    }
+                }
+            }
+            if self.shrinkage == Shrinkage::None {
+                // Cholesky of the correlation matrix: the j-th pivot squared is the share of
+                // feature j's variance the features before it leave unexplained, 1 − R².
+                let corr =
+                    |a: usize, b: usize| cov[a * m + b] / (cov[a * m + a] * cov[b * m + b]).sqrt();
+                let mut l = vec![0.0f64; m * m];
+                let mut bad = None;
+                for j in 0..m {
+                    let pivot2 = corr(j, j) - (0..j).map(|q| l[j * m + q].powi(2)).sum::<f64>();
+                    if pivot2.is_nan() || pivot2 < COLLINEAR_PIVOT2 {
+                        bad = Some(j);
+                        break;
+                    }
+                    l[j * m + j] = pivot2.sqrt();
+                    for i in j + 1..m {
+                        let v =
+                            corr(i, j) - (0..j).map(|q| l[i * m + q] * l[j * m + q]).sum::<f64>();
+                        l[i * m + j] = v / l[j * m + j];
+                    }
+                }
+                if let Some(j) = bad {
+                    return Some(format!(
+                        "mode {md}: `{}` is a linear combination of the scored values before it \
+                         within the mode (its covariance would be singular)",
+                        self.names[j]
+                    ));
+                }
+            }
+        }
+        None
+    }
+}
+
+/// Each sample's mode, and how they were found. `holdout` and `shrinkage` are the single-model
+/// settings each mode is fitted with ([`PartitionCheck`]).
 pub fn assign_modes(
     samples: &Samples,
     log_mask: u32,
     train_end: usize,
     spec: &BankSpec,
+    holdout: f64,
+    shrinkage: Shrinkage,
 ) -> Result<(Vec<u8>, usize, Option<ModeSearch>)> {
     if !samples.modes.is_empty() {
         let k = usize::from(*samples.modes.iter().max().expect("samples exist")) + 1;
@@ -495,26 +662,45 @@ pub fn assign_modes(
         .collect();
     let step = train_end.div_ceil(EM_MAX_ROWS).max(1);
     let em_rows: Vec<Vec<f64>> = z[..train_end].iter().step_by(step).cloned().collect();
-    let (mix, bic): (Mixture, Vec<(usize, f64)>) = match spec.modes {
+    let check = PartitionCheck {
+        t: &t,
+        z: &z,
+        names: &samples.names,
+        holdout,
+        shrinkage,
+        reg_covar: spec.mixture.reg_covar,
+    };
+    let split = |mix: &Mixture| -> Vec<u8> {
+        let rank = ranks(mix);
+        z.iter().map(|x| rank[mix.assign(x)]).collect()
+    };
+    let (mix, bic, skipped): (Mixture, Vec<(usize, f64)>, Vec<SkippedK>) = match spec.modes {
         ModeCount::Fixed(k) => {
             let mix = fit_mixture(&em_rows, k, &spec.mixture)
                 .context("while looking for the operating modes")?;
+            if k > 1 {
+                if let Some(p) = check.problem(&split(&mix), k, false) {
+                    bail!(
+                        "--modes {k}: EM's {k} modes cannot be fitted one by one: {p}; ask for \
+                         fewer modes, or use --modes auto, which skips such mode counts"
+                    );
+                }
+            }
             let b = mix.bic(em_rows.len());
-            (mix, vec![(k, b)])
+            (mix, vec![(k, b)], Vec::new())
         }
-        ModeCount::Auto => choose_modes(&em_rows, spec.max_modes, &spec.mixture)
-            .context("while looking for the operating modes")?,
+        ModeCount::Auto => choose_modes_checked(&em_rows, spec.max_modes, &spec.mixture, |mix| {
+            match check.problem(&split(mix), mix.k(), true) {
+                Some(p) => Err(p),
+                None => Ok(()),
+            }
+        })
+        .context("while looking for the operating modes")?,
     };
-    // Modes numbered by weight, heaviest first (ties: EM's order).
-    let mut order: Vec<usize> = (0..mix.k()).collect();
-    order.sort_by(|a, b| mix.weights[*b].total_cmp(&mix.weights[*a]));
-    let mut rank = vec![0u8; mix.k()];
-    for (r, k) in order.iter().enumerate() {
-        rank[*k] = r as u8;
-    }
-    let modes: Vec<u8> = z.iter().map(|x| rank[mix.assign(x)]).collect();
+    let modes = split(&mix);
     let search = ModeSearch {
         bic,
+        skipped,
         iterations: mix.iterations,
         converged: mix.converged,
         rows: em_rows.len(),
@@ -654,7 +840,8 @@ pub fn fit_bank(a: &TrainSpec, b: &BankSpec) -> Result<BankFit> {
         raw.file,
         m + 1
     );
-    let (modes, k, search) = assign_modes(&samples, log_mask, train_end, b)?;
+    let (modes, k, search) =
+        assign_modes(&samples, log_mask, train_end, b, a.holdout, a.shrinkage)?;
 
     // Each mode's samples, in time order, checked for enough rows to fit.
     let need = m + 2;
@@ -799,7 +986,6 @@ mod tests {
         assert_eq!(s.values, [1.5, 3.5]);
     }
 
-    use crate::fit::Shrinkage;
     use crate::pipeline::limits::LimitSpec;
     use rand::SeedableRng;
     use rand_chacha::ChaCha8Rng;
@@ -966,6 +1152,180 @@ mod tests {
             over_at_most <= 4,
             "{over_at_most} of {} over the at-most figure",
             4 * seeds
+        );
+    }
+
+    /// Three groups, the lightest with `f0` held at exactly 1.0 (a valve at its end stop, say),
+    /// beside the first, far from the second, so two modes are the first two with the third merged:
+    /// EM's third mode sits on it with a variance equal to its regularisation, which makes BIC
+    /// prefer K = 3 by a wide margin, but that mode has a constant feature and the single-model
+    /// pipeline cannot fit it.
+    fn constant_in_one_group(path: &Path) -> Vec<Vec<f64>> {
+        let mut rng = ChaCha8Rng::seed_from_u64(21);
+        let mut text = String::from("f0,f1\n");
+        let mut rows = Vec::new();
+        for i in 0..1300 {
+            let a: f64 = StandardNormal.sample(&mut rng);
+            let b: f64 = StandardNormal.sample(&mut rng);
+            let r = match i % 13 {
+                0..5 => [a, b],
+                5..10 => [20.0 + a, 20.0 + b],
+                _ => [1.0, -4.0 + b],
+            };
+            text.push_str(&format!("{},{}\n", r[0], r[1]));
+            rows.push(r.to_vec());
+        }
+        std::fs::write(path, text).unwrap();
+        rows
+    }
+
+    #[test]
+    fn auto_skips_a_mode_count_with_a_constant_feature_and_fixed_k_names_it() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("stops.csv");
+        let rows = constant_in_one_group(&path);
+        // Without the check, BIC picks the degenerate K = 3.
+        let (m, tried) =
+            crate::fit::mixture::choose_modes(&rows, 4, &MixtureOptions::default()).unwrap();
+        assert_eq!(m.k(), 3, "{tried:?}");
+        let a = spec(&path, 0.01);
+        let b = BankSpec {
+            modes: ModeCount::Auto,
+            ..BankSpec::default()
+        };
+        let fit = fit_bank(&a, &b).unwrap();
+        let search = fit.search.as_ref().unwrap();
+        let three = search
+            .skipped
+            .iter()
+            .find(|s| s.k == 3)
+            .unwrap_or_else(|| panic!("K = 3 not skipped: {search:?}"));
+        // EM's third mode holds the stop's rows and a few of the first group's with f0 within
+        // a hair of 1.0: not exactly constant, but with the regulariser's variance.
+        assert!(
+            three
+                .reason
+                .contains("mode 2: `f0` is almost constant within the mode"),
+            "{}",
+            three.reason
+        );
+        assert!(!search.bic.iter().any(|(k, _)| *k == 3), "{search:?}");
+        assert_eq!(fit.modes.len(), 2, "{search:?}");
+        // Every mode kept was fitted by the pipeline, so none holds a constant feature.
+        for md in &fit.modes {
+            assert!(md.trained.fitted.sd.iter().all(|s| *s > 0.0));
+        }
+        // The summary tells the user.
+        let trained = crate::pipeline::bank_out::train_bank(&a, &b).unwrap();
+        let text = crate::pipeline::bank_out::bank_summary_text(&trained);
+        assert!(
+            text.contains(
+                "Mode count K=3 skipped, not compared by BIC: mode 2: `f0` is almost constant"
+            ),
+            "{text}"
+        );
+        // An explicit --modes 3 is refused, naming the mode and the feature.
+        let e = fit_bank(
+            &a,
+            &BankSpec {
+                modes: ModeCount::Fixed(3),
+                ..BankSpec::default()
+            },
+        )
+        .err()
+        .expect("--modes 3 must be refused");
+        let e = format!("{e:#}");
+        assert!(
+            e.contains("--modes 3")
+                && e.contains("mode 2: `f0` is almost constant within the mode"),
+            "{e}"
+        );
+        // --modes 2 is fitted.
+        let two = fit_bank(
+            &a,
+            &BankSpec {
+                modes: ModeCount::Fixed(2),
+                ..BankSpec::default()
+            },
+        )
+        .unwrap();
+        assert_eq!(two.modes.len(), 2);
+    }
+
+    #[test]
+    fn a_mode_with_fewer_samples_than_parameters_or_collinear_is_refused() {
+        let names: Vec<String> = vec!["a".into(), "b".into()];
+        let mut rng = ChaCha8Rng::seed_from_u64(5);
+        let t: Vec<Vec<f64>> = (0..40)
+            .map(|i| {
+                let a: f64 = StandardNormal.sample(&mut rng);
+                let b: f64 = StandardNormal.sample(&mut rng);
+                // Mode 1 (the last 10): b = 2 a + 1 exactly.
+                if i < 30 {
+                    vec![a, b]
+                } else {
+                    vec![a, 2.0 * a + 1.0]
+                }
+            })
+            .collect();
+        let modes: Vec<u8> = (0..40).map(|i| u8::from(i >= 30)).collect();
+        let check = PartitionCheck {
+            t: &t,
+            z: &t,
+            names: &names,
+            holdout: 0.0,
+            shrinkage: Shrinkage::None,
+            reg_covar: 1e-6,
+        };
+        let p = check.problem(&modes, 2, false).unwrap();
+        assert!(p.contains("mode 1: `b` is a linear combination"), "{p}");
+        // A feature held exactly in mode 1.
+        let held: Vec<Vec<f64>> = t
+            .iter()
+            .enumerate()
+            .map(|(i, r)| if i >= 30 { vec![r[0], 3.0] } else { r.clone() })
+            .collect();
+        let p = PartitionCheck {
+            t: &held,
+            z: &held,
+            ..check
+        }
+        .problem(&modes, 2, false)
+        .unwrap();
+        assert!(
+            p.contains("mode 1: `b` is constant within the mode (all 10 samples to fit are 3)"),
+            "{p}"
+        );
+        // Shrinkage makes the collinear mode fittable.
+        let shrunk = PartitionCheck {
+            shrinkage: Shrinkage::LedoitWolf,
+            ..check
+        };
+        assert_eq!(shrunk.problem(&modes, 2, false), None);
+        // Four samples in mode 1: enough for the pipeline (m + 2 = 4), fewer than its own
+        // 5 parameters, so `auto` refuses it.
+        let modes: Vec<u8> = (0..40).map(|i| u8::from(i >= 36)).collect();
+        let t2: Vec<Vec<f64>> = t
+            .iter()
+            .enumerate()
+            .map(|(i, r)| {
+                if i >= 36 {
+                    vec![r[0], r[0] * r[0]]
+                } else {
+                    r.clone()
+                }
+            })
+            .collect();
+        let check = PartitionCheck {
+            t: &t2,
+            z: &t2,
+            ..shrunk
+        };
+        assert_eq!(check.problem(&modes, 2, false), None);
+        let p = check.problem(&modes, 2, true).unwrap();
+        assert!(
+            p.contains("mode 1 has 4 sample(s) to fit, fewer than its own 5 parameters"),
+            "{p}"
         );
     }
 

@@ -210,6 +210,15 @@ pub fn bank_summary_text(t: &BankTrained) -> String {
         f.modes.len(),
         t.baseline
     );
+    if let Some(search) = &f.search {
+        for sk in &search.skipped {
+            let _ = writeln!(
+                s,
+                "Mode count K={} skipped, not compared by BIC: {}.",
+                sk.k, sk.reason
+            );
+        }
+    }
     let _ = writeln!(
         s,
         "Window: {} reading(s){}; {} scored values a sample; {} readings, {} of them spent filling the window.",
