@@ -320,3 +320,91 @@ fn bad_bank_options_are_refused_by_name() {
         .failure()
         .stderr(predicate::str::contains("neg.csv: line 3, column `flow`"));
 }
+
+/// `--modes auto` sets aside a mode count whose extra mode is one slow excursion of the
+/// baseline: its samples count as a handful of independent rows, so its Phase II limit is many
+/// times the chi-square quantile, and under the nearest rule it would take in readings far
+/// from every mode. The two real duty points are kept. An explicit `--modes 3` keeps the mode
+/// and warns.
+#[test]
+fn auto_sets_aside_a_mode_known_from_one_slow_excursion() {
+    let mut rng = ChaCha8Rng::seed_from_u64(11);
+    let mut s = String::from("flow,pressure\n");
+    for i in 0..6000 {
+        let a: f64 = StandardNormal.sample(&mut rng);
+        let b: f64 = StandardNormal.sample(&mut rng);
+        let (flow, pressure) = if (i / 500) % 2 == 0 {
+            (20.0 + a, 3.0 + 0.3 * a + 0.2 * b)
+        } else {
+            (35.0 + 1.5 * a, 5.0 - 0.2 * a + 0.3 * b)
+        };
+        let _ = writeln!(s, "{flow:.4},{pressure:.4}");
+    }
+    // The excursion: 300 readings far from both, moving slowly (one slow swing), little noise.
+    for i in 0..300 {
+        let a: f64 = StandardNormal.sample(&mut rng);
+        let phase = std::f64::consts::PI * i as f64 / 300.0;
+        let _ = writeln!(
+            s,
+            "{:.4},{:.4}",
+            27.0 + 2.0 * phase.sin() + 0.05 * a,
+            12.0 + 1.5 * phase.cos() + 0.05 * a
+        );
+    }
+    let dir = tempfile::tempdir().unwrap();
+    let base = write(dir.path(), "b.csv", &s);
+    let out = dir.path().join("m.blob");
+    let o = fit(&base, &out)
+        .args([
+            "--modes",
+            "auto",
+            "--max-modes",
+            "3",
+            "--holdout",
+            "0",
+            "--json",
+        ])
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    let skipped = &v["mode_search"]["skipped"];
+    let k3 = skipped
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|x| x["k"] == 3)
+        .unwrap_or_else(|| panic!("K = 3 not set aside: {}", v["mode_search"]));
+    assert!(
+        k3["reason"]
+            .as_str()
+            .unwrap()
+            .contains("times the chi-square quantile"),
+        "{k3}"
+    );
+    println!("{k3}");
+    assert_eq!(
+        v["modes"].as_array().unwrap().len(),
+        2,
+        "{}",
+        v["mode_search"]
+    );
+    // Asked for explicitly, the mode is kept, with a warning.
+    let o = ellipsoid()
+        .args([
+            "fit",
+            base.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ])
+        .args(["--modes", "3", "--holdout", "0", "--simulations", "200"])
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(text.contains("Bank of 3 mode(s)"), "{text}");
+    assert!(
+        text.contains("Warning: mode 2's limit is") && text.contains("ask for fewer modes"),
+        "{text}"
+    );
+}

@@ -840,66 +840,43 @@ pub fn fit_bank(a: &TrainSpec, b: &BankSpec) -> Result<BankFit> {
         raw.file,
         m + 1
     );
-    let (modes, k, search) =
-        assign_modes(&samples, log_mask, train_end, b, a.holdout, a.shrinkage)?;
-
-    // Each mode's samples, in time order, checked for enough rows to fit.
-    let need = m + 2;
-    let mut per_mode: Vec<Vec<usize>> = vec![Vec::new(); k];
-    for (i, md) in modes.iter().enumerate() {
-        per_mode[usize::from(*md)].push(i);
-    }
-    for (md, idx) in per_mode.iter().enumerate() {
-        let fitted = idx.len() - ((a.holdout * idx.len() as f64).round() as usize).min(idx.len());
-        if fitted < need {
-            match &b.mode_column {
-                Some(mc) => bail!(
-                    "{}: column `{mc}`: mode {md} has {} sample(s) ({fitted} to fit after the hold-out); \
-                     a mode of {m} scored values needs at least {need} to fit; the mode column's values \
-                     must run 0 to {} with enough rows each",
-                    raw.file,
-                    idx.len(),
-                    k - 1
-                ),
-                None => bail!(
-                    "{}: mode {md} of {k} found by EM has {} sample(s) ({fitted} to fit after the hold-out); \
-                     a mode of {m} scored values needs at least {need}: ask for fewer modes",
-                    raw.file,
-                    idx.len()
-                ),
-            }
-        }
-    }
     let trained_at = a.trained_at.unwrap_or_else(|| {
         std::time::SystemTime::now()
             .duration_since(std::time::UNIX_EPOCH)
             .map_or(0, |d| d.as_secs())
     });
-    let mut out_modes = Vec::with_capacity(k);
-    for (md, idx) in per_mode.iter().enumerate() {
-        let mut values = Vec::with_capacity(idx.len() * m);
-        for i in idx {
-            values.extend_from_slice(&samples.values[i * m..(i + 1) * m]);
+    // `auto` sets aside a mode count whose modes include one too poorly known to be worth its
+    // own ellipsoid (see [`MAX_LIMIT_INFLATION`]), and tries the fewer modes BIC ranks next.
+    let mut spec_b = b.clone();
+    let mut inflated: Vec<SkippedK> = Vec::new();
+    let (_, mut search, mut out_modes) = loop {
+        let (k, search, out_modes) =
+            fit_modes(a, &spec_b, &raw, &samples, log_mask, train_end, trained_at)?;
+        if spec_b.modes == ModeCount::Auto && k > 1 {
+            if let Some((md, ratio)) = most_inflated(&out_modes) {
+                let t = &out_modes[md].trained;
+                inflated.push(SkippedK {
+                    k,
+                    reason: format!(
+                        "mode {md}'s limit {:.1} is {ratio:.0} times the chi-square quantile {:.1} at \
+                         the same α (above {MAX_LIMIT_INFLATION}): its samples count as only {:.0} \
+                         independent rows for the mean and {:.0} for the covariance, too few for an \
+                         ellipsoid of its own",
+                        t.thresholds.alarm,
+                        t.candidates.chi_square,
+                        t.promise.sizes.m_mean,
+                        t.promise.sizes.m_cov()
+                    ),
+                });
+                spec_b.max_modes = k - 1;
+                continue;
+            }
         }
-        let name = if k == 1 {
-            raw.file.clone()
-        } else {
-            format!("{} (mode {md})", raw.file)
-        };
-        let table = Table {
-            name: &name,
-            features: &samples.names,
-            values: &values,
-        };
-        let mut spec = a.clone();
-        spec.trained_at = Some(trained_at);
-        let trained = train_with(&spec, |opts| fit_rows(&table, opts))
-            .with_context(|| format!("while fitting mode {md}"))?;
-        out_modes.push(BankMode {
-            samples: idx.len() as u64,
-            weight: idx.len() as f64 / total as f64,
-            trained,
-        });
+        break (k, search, out_modes);
+    };
+    if let Some(s) = search.as_mut() {
+        s.skipped.extend(inflated);
+        s.skipped.sort_by_key(|x| x.k);
     }
     let drift_widen = b.drift_rate().map(drift_widening);
     if let Some(c) = drift_widen {
@@ -940,6 +917,100 @@ pub fn fit_bank(a: &TrainSpec, b: &BankSpec) -> Result<BankFit> {
         readings: raw.lines.len() as u64,
         filling: samples.filling,
     })
+}
+
+/// The most a mode's alarm limit may exceed the chi-square quantile at the same α for `--modes
+/// auto` to keep its mode count: a ratio of 10 widens the ellipsoid more than √10 ≈ 3.2 times in
+/// every direction beyond its covariance, for the uncertainty of the mode's own mean and
+/// covariance. Such a mode is known from a few independent stretches of the baseline (with
+/// autocorrelated or windowed samples, often a single visit), and under the nearest rule, which
+/// divides each mode's d² by its limit, it would take in readings far outside every other mode.
+/// The figure 10 is our judgement, not a published rule; `fit` says which mode count it set
+/// aside and why, and an explicit `--modes K` keeps the mode with a warning in the summary.
+pub const MAX_LIMIT_INFLATION: f64 = 10.0;
+
+/// The mode whose limit is the largest multiple of its chi-square quantile, if above
+/// [`MAX_LIMIT_INFLATION`].
+pub fn most_inflated(modes: &[BankMode]) -> Option<(usize, f64)> {
+    modes
+        .iter()
+        .enumerate()
+        .map(|(k, md)| {
+            let t = &md.trained;
+            (k, f64::from(t.thresholds.alarm) / t.candidates.chi_square)
+        })
+        .filter(|(_, r)| *r > MAX_LIMIT_INFLATION)
+        .max_by(|x, y| x.1.total_cmp(&y.1))
+}
+
+/// Find the modes and fit each by the single-model pipeline.
+fn fit_modes(
+    a: &TrainSpec,
+    b: &BankSpec,
+    raw: &RawRows,
+    samples: &Samples,
+    log_mask: u32,
+    train_end: usize,
+    trained_at: u64,
+) -> Result<(usize, Option<ModeSearch>, Vec<BankMode>)> {
+    let m = samples.m();
+    let total = samples.len();
+    let (modes, k, search) = assign_modes(samples, log_mask, train_end, b, a.holdout, a.shrinkage)?;
+
+    // Each mode's samples, in time order, checked for enough rows to fit.
+    let need = m + 2;
+    let mut per_mode: Vec<Vec<usize>> = vec![Vec::new(); k];
+    for (i, md) in modes.iter().enumerate() {
+        per_mode[usize::from(*md)].push(i);
+    }
+    for (md, idx) in per_mode.iter().enumerate() {
+        let fitted = idx.len() - ((a.holdout * idx.len() as f64).round() as usize).min(idx.len());
+        if fitted < need {
+            match &b.mode_column {
+                Some(mc) => bail!(
+                    "{}: column `{mc}`: mode {md} has {} sample(s) ({fitted} to fit after the hold-out); \
+                     a mode of {m} scored values needs at least {need} to fit; the mode column's values \
+                     must run 0 to {} with enough rows each",
+                    raw.file,
+                    idx.len(),
+                    k - 1
+                ),
+                None => bail!(
+                    "{}: mode {md} of {k} found by EM has {} sample(s) ({fitted} to fit after the hold-out); \
+                     a mode of {m} scored values needs at least {need}: ask for fewer modes",
+                    raw.file,
+                    idx.len()
+                ),
+            }
+        }
+    }
+    let mut out_modes = Vec::with_capacity(k);
+    for (md, idx) in per_mode.iter().enumerate() {
+        let mut values = Vec::with_capacity(idx.len() * m);
+        for i in idx {
+            values.extend_from_slice(&samples.values[i * m..(i + 1) * m]);
+        }
+        let name = if k == 1 {
+            raw.file.clone()
+        } else {
+            format!("{} (mode {md})", raw.file)
+        };
+        let table = Table {
+            name: &name,
+            features: &samples.names,
+            values: &values,
+        };
+        let mut spec = a.clone();
+        spec.trained_at = Some(trained_at);
+        let trained = train_with(&spec, |opts| fit_rows(&table, opts))
+            .with_context(|| format!("while fitting mode {md}"))?;
+        out_modes.push(BankMode {
+            samples: idx.len() as u64,
+            weight: idx.len() as f64 / total as f64,
+            trained,
+        });
+    }
+    Ok((k, search, out_modes))
 }
 
 #[cfg(test)]

@@ -258,6 +258,15 @@ pub fn bank_summary_text(t: &BankTrained) -> String {
          {:.3} expected false readings a day.",
         t.expected_per_day()
     );
+    if let Some((md, ratio)) = crate::pipeline::bank::most_inflated(&f.modes) {
+        let _ = writeln!(
+            s,
+            "  Warning: mode {md}'s limit is {ratio:.0} times its chi-square quantile: its samples \
+             count as too few independent rows for an ellipsoid of its own, and under the nearest \
+             rule it takes in readings far from every mode (--modes auto would not keep it; ask \
+             for fewer modes)."
+        );
+    }
     if let Some(d) = &f.drift {
         let _ = writeln!(
             s,
