@@ -315,6 +315,10 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize, const D: us
 {
     /// Check the slots, take the newest valid model, and drive both lines to their first levels:
     /// alarm off, and fault on if no slot holds a valid model. Reports every slot and pin.
+    ///
+    /// Out of line: the slot check's temporaries (the chosen model, the node being built) are
+    /// then on the stack only during boot, not in the frame of the scoring loop that follows.
+    #[inline(never)]
     pub fn boot(slots: &[Slot<'m>], alarm: Line<A>, fault: Line<F>, out: &mut impl Write) -> Self {
         const { assert!(T == ellipsoid_core::tri(N), "T must be tri(N)") };
         let chosen =
@@ -346,9 +350,9 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize, const D: us
         let name = |i: usize| slots.get(i).map_or("?", |s| s.name);
         // A bank's tracker (its check at load built one, so this cannot fail; if it did, the node
         // would take no model rather than score one it cannot track).
-        let tracks = match chosen.as_ref().map(|c| c.model) {
-            Some(SlotModel::Bank(b)) => Tracker::new(b).ok().map(Tracks::Plain),
-            Some(SlotModel::BankDiff(b)) => Tracker::new(b).ok().map(Tracks::Diff),
+        let tracks = match chosen.as_ref().map(|c| &c.model) {
+            Some(SlotModel::Bank(b)) => Tracker::new(*b).ok().map(Tracks::Plain),
+            Some(SlotModel::BankDiff(b)) => Tracker::new(*b).ok().map(Tracks::Diff),
             _ => None,
         };
         let chosen = chosen.filter(|c| !c.model.is_bank() || tracks.is_some());
