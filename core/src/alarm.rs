@@ -18,7 +18,7 @@
 //! | 5 | `Raised` | below, run + 1 = m | `Quiet` | both 0 | `Cleared` |
 //! | 6 | `Raised` | not below | `Raised` | below run 0 | — |
 //! | 7 | `Latched` | any score | `Latched` | — | — |
-//! | 8 | any | reading fault, or a `Scored` whose d² is not finite | same status, fault set | both 0 | `Fault` (only when the fault starts or its cause changes) |
+//! | 8 | any | reading fault, or a `Scored` whose d² is not finite | same status, fault set | both 0 | `Fault` (only when the fault starts or its cause changes; a filling window's `missing` count falling is the same cause) |
 //! | 9 | fault set | a scored reading | fault cleared, then rows 1–7 | — | `FaultCleared`, then any of the above |
 //! | 10 | `Raised`, `Latched` | [`AlarmMachine::reset`] | `Quiet` | both 0 | `Reset` |
 //! | 11 | no model ([`AlarmMachine::without_model`]) | anything, reset too | unchanged: fault line on, alarm off | — | `Fault(NoModel)` on the first reading only |
@@ -38,6 +38,18 @@ pub enum FaultCause {
     Reading(ReadingFault),
     /// There is no valid model: nothing is scored.
     NoModel,
+}
+
+impl FaultCause {
+    /// Whether `other` is the same cause for the fault line's events (row 8): equal, or both a
+    /// filling window whatever their `missing` counts. The count falls by one on every reading
+    /// while a window fills; each reading still reports its own count, but only the first of the
+    /// run is an event.
+    pub fn same_cause(&self, other: &FaultCause) -> bool {
+        let filling =
+            |c: &FaultCause| matches!(c, FaultCause::Reading(ReadingFault::WindowFilling { .. }));
+        self == other || (filling(self) && filling(other))
+    }
 }
 
 /// The alarm status.
@@ -61,7 +73,8 @@ pub enum EventKind {
     Cleared,
     /// The alarm line went off by an explicit reset.
     Reset,
-    /// The fault line went on, or its cause changed.
+    /// The fault line went on, or its cause changed ([`FaultCause::same_cause`]: a filling
+    /// window whose `missing` count fell is not a new cause).
     Fault(FaultCause),
     /// The fault line went off: a reading was scored again.
     FaultCleared,
@@ -236,7 +249,7 @@ impl AlarmMachine {
         match judged {
             Err(fault) => {
                 let cause = FaultCause::Reading(fault);
-                if self.fault != Some(cause) {
+                if !self.fault.is_some_and(|f| f.same_cause(&cause)) {
                     push(EventKind::Fault(cause));
                 }
                 self.fault = Some(cause);
@@ -441,6 +454,44 @@ mod tests {
         let s = a.update(&sc(20.0));
         assert!(s.alarm);
         assert_eq!(kinds(&s).as_slice(), &[EventKind::Raised]);
+    }
+
+    #[test]
+    fn row_8_a_filling_window_is_one_fault_event_whatever_its_count() {
+        let mut a = machine(1, 1, false);
+        let filling = |missing| Err(ReadingFault::WindowFilling { missing });
+        let s = a.update(&filling(15));
+        assert!(s.fault);
+        assert_eq!(
+            kinds(&s).as_slice(),
+            &[EventKind::Fault(FaultCause::Reading(
+                ReadingFault::WindowFilling { missing: 15 }
+            ))]
+        );
+        for missing in (1..15).rev() {
+            let s = a.update(&filling(missing));
+            assert!(s.fault && s.events.is_empty(), "missing {missing}");
+            // The machine still knows this reading's own count.
+            assert_eq!(
+                a.fault(),
+                Some(FaultCause::Reading(ReadingFault::WindowFilling { missing }))
+            );
+        }
+        // Another kind of fault is a new cause, and so is a filling window after it.
+        let s = a.update(&BAD);
+        assert_eq!(s.events.len(), 1);
+        let s = a.update(&filling(15));
+        assert_eq!(s.events.len(), 1);
+        // A scored reading ends the run; the next filling window is a new event.
+        assert_eq!(
+            kinds(&a.update(&sc(1.0))).as_slice(),
+            &[EventKind::FaultCleared]
+        );
+        assert_eq!(a.update(&filling(3)).events.len(), 1);
+        // Other features of the same kind stay distinct causes.
+        let nf = |feature| FaultCause::Reading(ReadingFault::NotFinite { feature });
+        assert!(!nf(1).same_cause(&nf(2)));
+        assert!(nf(1).same_cause(&nf(1)));
     }
 
     #[test]

@@ -47,15 +47,16 @@
 //!
 //! A model bank's [`Tracker`] holds the [`FlashBank`] view (the centres of [`MAX_MODES`] modes,
 //! `32 M` bytes, and a few scalars), the [`Window`] ring (`64 N` bytes: [`MAX_WINDOW`] readings,
-//! whatever the window's length), the alarm machine and the drift shift (`4 M`). On thumbv7em
+//! whatever the window's length), the alarm machine, the drift shift (`4 M`) and the last scored vector (`4 M`, for
+//! [`Tracker::explain_last`]). On thumbv7em
 //! (pinned at compile time in `track.rs`):
 //!
 //! | N, M | `Tracker` | of which `FlashBank` | `Window` |
 //! |---|---|---|---|
-//! | 8, 8 | 896 | 312 | 520 |
-//! | 8, 16 (differences) | 1 184 | 568 | 520 |
-//! | 16, 16 | 1 696 | 568 | 1 032 |
-//! | 16, 32 (differences) | 2 272 | 1 080 | 1 032 |
+//! | 8, 8 | 936 | 312 | 520 |
+//! | 8, 16 (differences) | 1 256 | 568 | 520 |
+//! | 16, 16 | 1 768 | 568 | 1 032 |
+//! | 16, 32 (differences) | 2 408 | 1 080 | 1 032 |
 //!
 //! # Using it from flash
 //!

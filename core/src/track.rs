@@ -71,6 +71,10 @@ pub struct Tracker<'a, const N: usize, const M: usize> {
     drift_at_bound: bool,
     /// The last valid mode a known-mode bank was told.
     last_mode: Option<u8>,
+    /// The scored vector `t'` of the last reading, and its chosen mode (`None`: the last
+    /// reading was not scored): what [`Tracker::explain_last`] splits.
+    last_t: [f32; M],
+    last_k: Option<u8>,
 }
 
 impl<'a, const N: usize, const M: usize> Tracker<'a, N, M> {
@@ -98,6 +102,8 @@ impl<'a, const N: usize, const M: usize> Tracker<'a, N, M> {
             shift: [0.0; M],
             drift_at_bound: false,
             last_mode: None,
+            last_t: [0.0; M],
+            last_k: None,
         })
     }
 
@@ -124,6 +130,22 @@ impl<'a, const N: usize, const M: usize> Tracker<'a, N, M> {
     /// Whether the drift has reached its bound since the model was loaded.
     pub const fn drift_at_bound(&self) -> bool {
         self.drift_at_bound
+    }
+
+    /// The chosen mode's per-feature contributions to d² on the last reading, the same bits
+    /// [`Self::step_explained`] would have given on it, without a copy of the tracker and without
+    /// stepping again: the tracker keeps the last scored vector (before the drift moved), and
+    /// this splits it. `None` when the last reading was not scored (or none was taken) or the
+    /// split does not fit in `f32`.
+    pub fn explain_last(&self) -> Option<[f32; M]> {
+        let k = self.last_k?;
+        self.bank.contributions(usize::from(k), &self.last_t).ok()
+    }
+
+    /// The feature with the largest contribution on the last reading ([`Self::explain_last`]),
+    /// by [`crate::Explained::top`]'s rule, as [`TrackStep::top`] of [`Self::step_explained`].
+    pub fn top_last(&self) -> Option<usize> {
+        self.explain_last().map(|c| crate::model::top_of(&c).0)
     }
 
     /// Clear a raised or latched alarm by hand. The window, the drift shift and the
@@ -165,6 +187,10 @@ impl<'a, const N: usize, const M: usize> Tracker<'a, N, M> {
         let scored = pushed.and_then(|y| {
             let t = self.bank.transform(&y, drift.then_some(&self.shift));
             self.bank.score_t(&t, mode).map(|(s, j)| (s, j, t))
+        });
+        self.last_k = scored.as_ref().ok().map(|(s, _, t)| {
+            self.last_t = *t;
+            s.mode
         });
         let before = self.alarm.status();
         let mut step = self.alarm.update_judged(scored.map(|(_, j, _)| j));
@@ -663,6 +689,84 @@ mod tests {
         assert_eq!((a.score, a.step), (b.score, b.step));
     }
 
+    /// `explain_last` after `step` is `step_explained`'s split to the bit, on every reading of a
+    /// stream with a window, two modes, drift that moves, faults and a raised alarm; `None` after
+    /// a reading that was not scored.
+    #[test]
+    fn explain_last_is_step_explained_without_the_copy() {
+        let m0 = ModeParams::<2> {
+            offset: [0.0, 0.0],
+            scale: [1.0, 2.0],
+            mean: [0.0, 0.0],
+            w: [[1.0, 0.0], [-0.7, 1.3]],
+            thresholds: Thresholds {
+                alarm: 9.0,
+                clear: 4.0,
+            },
+        };
+        let m1 = ModeParams::<2> {
+            offset: [30.0, 5.0],
+            ..m0
+        };
+        let modes = [m0, m1];
+        let mut p = params2(&modes, ModeSelect::Nearest);
+        p.window = WindowSpec {
+            length: 3,
+            differences: false,
+        };
+        p.drift = Some(DriftSpec {
+            rate: 0.05,
+            bound: [0.5, 0.5],
+        });
+        let blob = bank_blob(&p);
+        let mut plain = Tracker::<2, 2>::from_blob(&blob).unwrap();
+        let mut explained = plain.clone();
+        assert_eq!(plain.explain_last(), None);
+        let mut rng = Lcg(7);
+        let (mut split, mut moved, mut raised, mut faults) = (0, 0, 0, 0);
+        for i in 0..600 {
+            let z = normal2(&mut rng);
+            let centre = if (i / 100) % 2 == 0 {
+                [0.3, 0.1]
+            } else {
+                [30.0, 5.0]
+            };
+            let mut x = [centre[0] + z[0], centre[1] + 0.5 * z[1]];
+            if i % 97 == 50 {
+                x[1] = f32::NAN;
+            }
+            if (450..460).contains(&i) {
+                x[0] += 8.0;
+            }
+            let shift_before = *plain.shift();
+            let a = plain.step(&x, None);
+            let b = explained.step_explained(&x, None);
+            assert_eq!((&a.score, &a.step), (&b.score, &b.step), "reading {i}");
+            let last = plain.explain_last();
+            assert_eq!(
+                last.map(|c| c.map(f32::to_bits)),
+                b.contributions.map(|c| c.map(f32::to_bits)),
+                "reading {i}"
+            );
+            assert_eq!(plain.top_last(), b.top(), "reading {i}");
+            split += usize::from(last.is_some());
+            moved += usize::from(*plain.shift() != shift_before);
+            faults += usize::from(a.score.is_err());
+            assert_eq!(a.score.is_err(), last.is_none(), "reading {i}");
+            raised += a
+                .step
+                .events
+                .iter()
+                .filter(|e| e.kind == EventKind::Raised)
+                .count();
+        }
+        // The stream reaches what it claims.
+        assert!(
+            split > 400 && moved > 100 && raised >= 1 && faults >= 6,
+            "{split} {moved} {raised} {faults}"
+        );
+    }
+
     /// A reading with differences and a window: the mean and the difference are scored, with the
     /// log of the mean on a log feature.
     #[test]
@@ -716,10 +820,10 @@ mod tests {
 #[cfg(target_pointer_width = "32")]
 const _: () = {
     use core::mem::size_of;
-    assert!(size_of::<Tracker<'static, 8, 8>>() == 896);
-    assert!(size_of::<Tracker<'static, 8, 16>>() == 1184);
-    assert!(size_of::<Tracker<'static, 16, 16>>() == 1696);
-    assert!(size_of::<Tracker<'static, 16, 32>>() == 2272);
+    assert!(size_of::<Tracker<'static, 8, 8>>() == 936);
+    assert!(size_of::<Tracker<'static, 8, 16>>() == 1256);
+    assert!(size_of::<Tracker<'static, 16, 16>>() == 1768);
+    assert!(size_of::<Tracker<'static, 16, 32>>() == 2408);
     assert!(size_of::<FlashBank<'static, 8, 8>>() == 312);
     assert!(size_of::<FlashBank<'static, 8, 16>>() == 568);
     assert!(size_of::<FlashBank<'static, 16, 16>>() == 568);
@@ -741,8 +845,8 @@ mod sizes {
     /// carries two borrowed slices, 8 bytes longer each here; the window and steps hold none.
     #[test]
     fn sizes_on_a_64_bit_host() {
-        assert_eq!(size_of::<Tracker<'static, 8, 8>>(), 896 + 16);
-        assert_eq!(size_of::<Tracker<'static, 16, 32>>(), 2272 + 16);
+        assert_eq!(size_of::<Tracker<'static, 8, 8>>(), 936 + 16);
+        assert_eq!(size_of::<Tracker<'static, 16, 32>>(), 2408 + 16);
         assert_eq!(size_of::<FlashBank<'static, 8, 8>>(), 312 + 16);
         assert_eq!(size_of::<FlashBank<'static, 16, 32>>(), 1080 + 16);
         assert_eq!(size_of::<Window<8, 8>>(), 520);

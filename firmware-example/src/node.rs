@@ -42,9 +42,7 @@
 use core::fmt::{self, Write};
 
 use ellipsoid_core::track::{TrackStep, Tracker};
-use ellipsoid_core::{
-    AlarmMachine, EventKind, Explained, ReadingFault, Scored, Status, Step, Verdict,
-};
+use ellipsoid_core::{AlarmMachine, EventKind, Explained, ReadingFault, Scored, Step, Verdict};
 use embedded_hal::digital::OutputPin;
 
 use crate::pins::{Line, PinChange};
@@ -75,37 +73,28 @@ pub fn explain<const N: usize, const T: usize, const D: usize>(
 /// largest contribution to d² (`top`). Out of line, as [`score`], so that the image checks (panic
 /// machinery, flash per group) find the bank's path.
 ///
-/// The contributions are computed only when the alarm is raised, as for a single model: while
-/// the alarm is quiet (the only state a raise can come from) the tracker's state before the
-/// reading is kept, and if the reading raises, that copy takes the same reading again through
-/// `Tracker::step_explained`, which is the same step to the bit plus the split. Computing the
-/// split (in `f64`) on every reading would cost about ten times the step; the copy costs
-/// `size_of` the tracker in stack and a `memcpy` (see the figures).
+/// The contributions are computed only when the alarm is raised, as for a single model: the
+/// tracker keeps the last scored vector, and `Tracker::top_last` splits it after the step (the
+/// same bits `Tracker::step_explained` gives), so neither a copy of the tracker nor a second
+/// step is needed. Computing the split (in `f64`) on every reading would cost about ten times
+/// the step.
 #[inline(never)]
 pub fn track<const N: usize, const M: usize>(
     tracker: &mut Tracker<'_, N, M>,
     x: &[f32; N],
     mode: Option<u8>,
 ) -> (TrackStep<M>, Option<usize>) {
-    let before = (tracker.alarm().status() == Status::Quiet).then(|| tracker.clone());
     let step = tracker.step(x, mode);
     let raised = step.step.events.iter().any(|e| e.kind == EventKind::Raised);
-    let top = match (raised, before) {
-        (true, Some(mut b)) => explain_bank(&mut b, x, mode),
-        _ => None,
-    };
+    let top = if raised { explain_bank(tracker) } else { None };
     (step, top)
 }
 
-/// The chosen mode's largest contribution on a reading, by the core's rule (`Explained::top`,
-/// as the host's replay picks it). Out of line, as [`explain`].
+/// The chosen mode's largest contribution on the tracker's last reading, by the core's rule
+/// (`Explained::top`, as the host's replay picks it). Out of line, as [`explain`].
 #[inline(never)]
-fn explain_bank<const N: usize, const M: usize>(
-    tracker: &mut Tracker<'_, N, M>,
-    x: &[f32; N],
-    mode: Option<u8>,
-) -> Option<usize> {
-    tracker.step_explained(x, mode).top()
+fn explain_bank<const N: usize, const M: usize>(tracker: &Tracker<'_, N, M>) -> Option<usize> {
+    tracker.top_last()
 }
 
 /// Feed one score to the alarm state machine. Out of line, as [`score`], so that the image's
@@ -326,6 +315,10 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize, const D: us
 {
     /// Check the slots, take the newest valid model, and drive both lines to their first levels:
     /// alarm off, and fault on if no slot holds a valid model. Reports every slot and pin.
+    ///
+    /// Out of line: the slot check's temporaries (the chosen model, the node being built) are
+    /// then on the stack only during boot, not in the frame of the scoring loop that follows.
+    #[inline(never)]
     pub fn boot(slots: &[Slot<'m>], alarm: Line<A>, fault: Line<F>, out: &mut impl Write) -> Self {
         const { assert!(T == ellipsoid_core::tri(N), "T must be tri(N)") };
         let chosen =
@@ -357,9 +350,9 @@ impl<'m, A: OutputPin, F: OutputPin, const N: usize, const T: usize, const D: us
         let name = |i: usize| slots.get(i).map_or("?", |s| s.name);
         // A bank's tracker (its check at load built one, so this cannot fail; if it did, the node
         // would take no model rather than score one it cannot track).
-        let tracks = match chosen.as_ref().map(|c| c.model) {
-            Some(SlotModel::Bank(b)) => Tracker::new(b).ok().map(Tracks::Plain),
-            Some(SlotModel::BankDiff(b)) => Tracker::new(b).ok().map(Tracks::Diff),
+        let tracks = match chosen.as_ref().map(|c| &c.model) {
+            Some(SlotModel::Bank(b)) => Tracker::new(*b).ok().map(Tracks::Plain),
+            Some(SlotModel::BankDiff(b)) => Tracker::new(*b).ok().map(Tracks::Diff),
             _ => None,
         };
         let chosen = chosen.filter(|c| !c.model.is_bank() || tracks.is_some());

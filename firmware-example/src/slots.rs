@@ -422,6 +422,9 @@ fn beats(a: &Candidate, b: &Candidate) -> (bool, Option<TieKind>) {
 /// model (see the module documentation for the rule), or `None` when no slot validates. Slots
 /// `skip` (an index) is passed over, as if unusable, without a report: the slot a node has fallen
 /// back from.
+///
+/// Out of line: its frame (a model decoded from each slot) is on the stack only while it runs.
+#[inline(never)]
 pub fn choose<'a, const N: usize, const T: usize, const D: usize>(
     slots: &[Slot<'a>],
     skip: Option<usize>,
