@@ -103,10 +103,10 @@ pub fn run_demo(dir: &Path, seed: u64, quiet: bool) -> Result<String> {
     let data = scenario::generate(seed);
     let test_start = DEMO_START_UNIX + data.baseline.len() as i64;
     output::write_atomic(&files.baseline, |w| {
-        scenario::write_csv(w, &data.baseline, None, DEMO_START_UNIX)
+        scenario::write_csv(w, &data.baseline, None, None, DEMO_START_UNIX)
     })?;
     output::write_atomic(&files.readings, |w| {
-        scenario::write_csv(w, &data.test, Some(&data.labels), test_start)
+        scenario::write_csv(w, &data.test, None, Some(&data.labels), test_start)
     })?;
 
     let spec = TrainSpec {
