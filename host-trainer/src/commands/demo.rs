@@ -2,8 +2,10 @@
 //!
 //! Generate a healthy baseline and a later stretch with injected faults; fit; choose the threshold;
 //! export the blob; replay and evaluate the later stretch through the core; set the full-covariance
-//! model beside a per-feature (diagonal) model; write the report; say what was found and where
-//! every file is.
+//! model beside a per-feature (diagonal) model; fit banks on the same baseline (nearest modes by EM
+//! and BIC, known modes told the duty point, a window, drift) and score the same stretch with each
+//! through the core's tracker, side by side; write the report (with a panel per mode and the drift
+//! of the centre); say what was found and where every file is.
 
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
