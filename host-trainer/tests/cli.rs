@@ -452,6 +452,64 @@ fn demo_runs_end_to_end() {
     // The demo blob decodes in the core as a 5-feature model.
     let bytes = std::fs::read(out.join("model.blob")).unwrap();
     assert!(Model::<5>::from_blob(&bytes).is_ok());
+    for f in [
+        "baseline-duty.csv",
+        "readings-duty.csv",
+        "bank.blob",
+        "bank.json",
+        "bank-replay.csv",
+    ] {
+        assert!(out.join(f).exists(), "{f} missing");
+    }
+    let summary = std::fs::read_to_string(out.join("summary.txt")).unwrap();
+    for v in [
+        "one Gaussian",
+        "bank, nearest mode",
+        "bank, known mode (duty_point)",
+        "+ drift",
+    ] {
+        assert!(summary.contains(v), "no `{v}` in the side-by-side");
+    }
+    assert!(html.contains("The bank's modes") && html.contains("Drift of the centre"));
+    demo_drift_follows_the_warming(&out);
+}
+
+/// The bank's blob replayed by the core's own tracker over the demo's readings: the greenhouse
+/// warms the bearing temperature from test row 3 600 on (`scenario::WARMING_START`), so its drift
+/// shift must grow positive (the core's rule s ← s + rate·(t − s − c_k) follows the readings),
+/// and it must stay inside the bound given in the card.
+fn demo_drift_follows_the_warming(out: &Path) {
+    use ellipsoid_core::track::Tracker;
+    let bytes = std::fs::read(out.join("bank.blob")).unwrap();
+    let mut t = Tracker::<5, 5>::from_blob(&bytes).expect("the demo bank is N = M = 5");
+    let card: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(out.join("bank.json")).unwrap()).unwrap();
+    let bound = card["drift"]["bound"][3].as_f64().expect("a drift bound");
+    let text = std::fs::read_to_string(out.join("readings.csv")).unwrap();
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    assert_eq!(header[4], "bearing_temp_c");
+    let mut at = Vec::new();
+    for (i, line) in lines.enumerate() {
+        let cells: Vec<&str> = line.split(',').collect();
+        let mut x = [f32::NAN; 5];
+        for (d, c) in x.iter_mut().zip(&cells[1..6]) {
+            *d = c.parse().unwrap_or(f32::NAN);
+        }
+        t.step(&x, None);
+        if i == 3600 || i == 11_399 {
+            at.push(t.shift()[3]);
+        }
+    }
+    let (start, before_wear) = (at[0], at[1]);
+    assert!(
+        before_wear > 0.0 && before_wear > start + 0.5,
+        "bearing temperature shift {start} at the warming's start, {before_wear} before the wear"
+    );
+    assert!(
+        f64::from(before_wear) <= bound * 1.0001,
+        "{before_wear} past {bound}"
+    );
 }
 
 #[test]

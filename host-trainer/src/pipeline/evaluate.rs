@@ -150,6 +150,17 @@ pub fn replay_stream(
     spec: &StreamSpec,
     mut each: impl FnMut(ReplayRow, Option<bool>) -> Result<()>,
 ) -> Result<u64> {
+    replay_stream_with(rp, path, spec, |row, label, _| each(row, label))
+}
+
+/// [`replay_stream`], with `each` also shown the replayer after the step (to read its drift
+/// shift, [`Replayer::shift`]).
+pub fn replay_stream_with(
+    rp: &mut Replayer<'_>,
+    path: &Path,
+    spec: &StreamSpec,
+    mut each: impl FnMut(ReplayRow, Option<bool>, &Replayer<'_>) -> Result<()>,
+) -> Result<u64> {
     let n = spec.features.len();
     let mut columns = spec.features.clone();
     if let Some(mode) = &spec.mode_column {
@@ -200,7 +211,8 @@ pub fn replay_stream(
             None => None,
         };
         let label = row.label;
-        each(rp.step_mode(&x, mode), label)?;
+        let r = rp.step_mode(&x, mode);
+        each(r, label, rp)?;
         count += 1;
     }
     Ok(count)
@@ -246,6 +258,43 @@ pub fn score_stream(mut rp: Replayer<'_>, path: &Path, spec: &StreamSpec) -> Res
         path.display()
     );
     Ok(Scored { rows, labels })
+}
+
+/// The drift shift after some readings: (reading index, shift per scored feature, model units).
+pub type Shifts = Vec<(usize, Vec<f32>)>;
+
+/// [`score_stream`], also keeping the tracker's drift shift (model units, one value per scored
+/// feature) after every `every`-th reading, with the reading's index: the centre's drift over
+/// the stream as the device has it.
+pub fn score_stream_tracked(
+    mut rp: Replayer<'_>,
+    path: &Path,
+    spec: &StreamSpec,
+    every: usize,
+) -> Result<(Scored, Shifts)> {
+    anyhow::ensure!(
+        spec.label_column.is_some(),
+        "an evaluation needs a label column"
+    );
+    let every = every.max(1);
+    let (mut rows, mut labels, mut shifts) = (Vec::new(), Vec::new(), Vec::new());
+    replay_stream_with(&mut rp, path, spec, |row, label, r| {
+        let i = rows.len();
+        if i % every == 0 {
+            if let Some(s) = r.shift() {
+                shifts.push((i, s));
+            }
+        }
+        labels.push(label.unwrap_or(false));
+        rows.push(row);
+        Ok(())
+    })?;
+    anyhow::ensure!(
+        !rows.is_empty(),
+        "{}: no readings to evaluate",
+        path.display()
+    );
+    Ok((Scored { rows, labels }, shifts))
 }
 
 /// QQ points of the d² of readings labelled normal against chi-square(n) quantiles, at most 400.

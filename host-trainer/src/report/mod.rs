@@ -24,6 +24,7 @@ pub mod fleet;
 mod heatmap;
 mod histogram;
 mod html;
+pub mod modes;
 mod qq;
 mod style;
 mod timeline;
@@ -76,6 +77,16 @@ pub struct ReportData {
     pub diagonal: Option<DiagonalComparison>,
     /// Extra tables: (title, header, rows).
     pub tables: Vec<(String, Vec<String>, Vec<Vec<String>>)>,
+    /// A bank on the same stream, if one was run: what it is, and a panel per mode.
+    pub bank: Option<(String, Vec<modes::ModePanel>)>,
+    /// The drift of a bank's centre over the stream, if it had drift.
+    pub drift: Option<modes::DriftPlot>,
+}
+
+/// `h:mm:ss` of a reading index at `rate_hz` (`reading i` without a rate), as the report writes
+/// times.
+pub fn clock_of(i: usize, rate_hz: f64) -> String {
+    clock(i, rate_hz)
 }
 
 /// The per-feature (diagonal covariance) model run on the same stream.
@@ -121,6 +132,7 @@ pub fn render(data: &ReportData) -> Result<String> {
     correlation_section(&mut out, data)?;
     top_alarms_section(&mut out, data)?;
     diagonal_section(&mut out, data)?;
+    bank_section(&mut out, data)?;
     tables_and_footer(&mut out, data);
     Ok(out)
 }
@@ -434,6 +446,34 @@ fn diagonal_section(out: &mut String, data: &ReportData) -> Result<()> {
 }
 
 /// Extra tables and the footer.
+fn bank_section(out: &mut String, data: &ReportData) -> Result<()> {
+    if let Some((what, panels)) = &data.bank {
+        let _ = writeln!(
+            out,
+            "<section><h2>The bank's modes</h2>\n<p>{}: a reading is flagged only when it is outside \
+             every mode's alarm limit; each reading is shown under the mode the device chose for it.</p>\n\
+             <div class=\"row small\">",
+            escape(what)
+        );
+        for p in panels {
+            out.push_str("<div>");
+            out.push_str(&modes::mode_panel_html(p, data.rate_hz)?);
+            out.push_str("</div>");
+        }
+        out.push_str("</div></section>\n");
+    }
+    if let Some(d) = &data.drift {
+        out.push_str(
+            "<section><h2>Drift of the centre</h2>\n<p>The slow shift the device learns while the \
+             readings are quiet (frozen otherwise), bounded per feature; at the bound it stops and \
+             raises a drift event.</p>\n",
+        );
+        out.push_str(&modes::drift_html(d, data.rate_hz)?);
+        out.push_str("</section>\n");
+    }
+    Ok(())
+}
+
 fn tables_and_footer(out: &mut String, data: &ReportData) {
     for (title, header, rows) in &data.tables {
         let _ = writeln!(out, "<section><h2>{}</h2>", escape(title));

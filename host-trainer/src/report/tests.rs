@@ -45,6 +45,8 @@ fn small() -> ReportData {
             vec!["name".into(), "d²".into()],
             vec![vec!["alarm".into(), "16.27".into()]],
         )],
+        bank: None,
+        drift: None,
     }
 }
 
@@ -108,6 +110,36 @@ fn an_empty_report_renders_without_panicking() {
     };
     let html = render(&data).unwrap();
     assert_eq!(html.matches("<svg").count(), 1);
+}
+
+#[test]
+fn a_bank_gets_a_panel_per_mode_and_its_drift_a_plot() {
+    use super::modes::{DriftPlot, ModePanel};
+    let panel = |mode: usize| ModePanel {
+        mode,
+        share: 0.5,
+        alarm: 10.0,
+        centre: vec![("a".into(), 1.0)],
+        d2: vec![(mode, 2.0), (mode + 2, 30.0)],
+        stream_len: 4,
+    };
+    let data = ReportData {
+        bank: Some(("bank <2 modes>".into(), vec![panel(0), panel(1)])),
+        drift: Some(DriftPlot {
+            features: vec!["a".into()],
+            shifts: vec![(0, vec![0.0]), (3, vec![1.0])],
+            bound: 1.0,
+            events: vec![3],
+            stream_len: 4,
+        }),
+        ..Default::default()
+    };
+    let html = render(&data).unwrap();
+    assert!(html.contains("<h3>Mode 0</h3>") && html.contains("<h3>Mode 1</h3>"));
+    assert!(html.contains("bank &lt;2 modes&gt;"));
+    assert!(html.contains("Drift of the centre"));
+    // Two mode panels and the drift plot.
+    assert_eq!(html.matches("<svg").count(), 3);
 }
 
 #[test]

@@ -5,6 +5,11 @@
 //!
 //! * the irrigation controller moves a zone valve between openings (one zone after another, each
 //!   for 6 to 20 minutes); the valve actuator slews at a limited rate and hunts slightly;
+//! * the controller also switches between two programmes, each for 40 to 80 minutes: duty point 0
+//!   runs the pump at full speed, duty point 1 (a misting programme) has the drive run it at
+//!   [`REDUCED_SPEED`] of full speed. By the affinity laws the pump's head scales with n², its
+//!   flow with n and its shaft power with n³; the controller's duty point is logged beside the
+//!   readings (`duty_point`, 0 or 1), so that a bank can be told it;
 //! * the operating point is where the pump curve `P = Ps + H0 − k·q²` meets the system curve
 //!   `P = Hs + R(v)·q²`, with `q` the flow in hundreds of L/min, `Ps` the suction (tank) pressure and
 //!   `R(v) = R0 / v²` the resistance of the valve at opening `v`. Opening the valve moves the point
@@ -12,15 +17,18 @@
 //! * the pump's shaft power rises with flow (a radial pump's power curve), and the motor current
 //!   follows the shaft power and the supply voltage;
 //! * the bearing temperature follows the load through a first-order lag (time constant 10 minutes)
-//!   on top of the greenhouse air temperature, which drifts;
+//!   on top of the greenhouse air temperature, which drifts; in the test stretch the sun comes
+//!   round and the greenhouse warms by [`WARMING_C`] °C over the last three hours (healthy, slow
+//!   against the zones and programmes, and beyond anything the baseline saw);
 //! * the vibration rises slightly with flow and away from the best-efficiency flow.
 //!
 //! Each channel gets sensor noise and is rounded to its transmitter's resolution, so a value
 //! written with [`write_csv`] reads back to the same `f64`.
 //!
 //! The baseline stretch (6 h) is healthy. The test stretch (4 h) follows it and carries five
-//! injected [`Episode`]s, described in [`generate`]. The clogging filter is built so that every
-//! channel stays inside its own baseline range: only the joint model can see it.
+//! injected [`Episode`]s, described in [`generate`]. The clogging filter happens at full speed
+//! (duty point 0) and is built so that every channel stays inside its own baseline range at that
+//! duty point: only a joint model can see it.
 
 use std::io::Write;
 use std::time::{Duration, UNIX_EPOCH};
@@ -49,6 +57,16 @@ pub const TEST_ROWS: usize = 4 * 3600;
 /// Decimal places each channel is logged with (its transmitter's resolution).
 pub const DECIMALS: [usize; 5] = [3, 3, 1, 2, 2];
 
+/// The column that logs the controller's duty point (0: full speed, 1: reduced speed).
+pub const DUTY_COLUMN: &str = "duty_point";
+/// Pump speed at duty point 1, as a fraction of full speed.
+pub const REDUCED_SPEED: f64 = 0.8;
+/// How much the greenhouse air warms in the test stretch, °C (from [`WARMING_START`] to the end).
+pub const WARMING_C: f64 = 8.0;
+/// Test row at which the afternoon warming starts (after the clog, so that the clog's channels
+/// stay inside their baseline ranges).
+pub const WARMING_START: usize = 3600;
+
 /// An injected fault in the test stretch.
 #[derive(Clone, Debug, serde::Serialize)]
 pub struct Episode {
@@ -71,6 +89,10 @@ pub struct DemoData {
     pub test: Vec<[f64; 5]>,
     /// Per test row: true inside an injected episode.
     pub labels: Vec<bool>,
+    /// The controller's duty point of each baseline row (0 full speed, 1 reduced speed).
+    pub baseline_duty: Vec<u8>,
+    /// The controller's duty point of each test row.
+    pub test_duty: Vec<u8>,
     /// The injected episodes, in time order.
     pub episodes: Vec<Episode>,
 }
@@ -158,6 +180,24 @@ fn valve_targets(rng: &mut ChaCha8Rng, len: usize, test_at: usize) -> Vec<f64> {
     target
 }
 
+/// The controller's duty point for every simulated second: programmes of 40 to 80 minutes,
+/// alternating, except where the test stretch needs a known one: full speed from before the
+/// clog to after the stuck transmitter (the episodes' stories are told at full speed), then
+/// reduced speed for a while, so that the test stretch has both.
+fn duty_points(rng: &mut ChaCha8Rng, len: usize, test_at: usize) -> Vec<u8> {
+    let mut duty = Vec::with_capacity(len);
+    let mut d: u8 = rng.random_range(0..2);
+    while duty.len() < len {
+        let hold = rng.random_range(2400..4800);
+        duty.extend(std::iter::repeat_n(d, hold));
+        d = 1 - d;
+    }
+    duty.truncate(len);
+    duty[test_at + CLOG.0 - 400..test_at + STUCK.1 + 200].fill(0);
+    duty[test_at + STUCK.1 + 200..test_at + STUCK.1 + 1000].fill(1);
+    duty
+}
+
 /// Generate the scenario. The same seed gives the same data on every platform (ChaCha8).
 ///
 /// The test stretch starts right after the baseline and carries, in this order:
@@ -169,11 +209,15 @@ fn valve_targets(rng: &mut ChaCha8Rng, len: usize, test_at: usize) -> Vec<f64> {
 /// | 6 600–7 200 | dry running | flow and current drop, vibration rises |
 /// | 8 400–8 445 | dropout | NaN in every channel, then in pressure and flow only |
 /// | 11 400–end | wearing bearing | vibration and temperature creep up |
+///
+/// The clog and the stuck transmitter happen at full speed (duty point 0); the greenhouse
+/// warming (healthy, not labelled) runs from row 3 600 to the end.
 pub fn generate(seed: u64) -> DemoData {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let test_at = WARM_UP + BASELINE_ROWS;
     let total = test_at + TEST_ROWS;
     let targets = valve_targets(&mut rng, total, test_at);
+    let duty = duty_points(&mut rng, total, test_at);
 
     let mut suction = Drift::new(0.04, 1200.0, &mut rng);
     let mut supply = Drift::new(0.008, 300.0, &mut rng);
@@ -191,6 +235,8 @@ pub fn generate(seed: u64) -> DemoData {
     let mut stuck_value = f64::NAN;
     let mut baseline = Vec::with_capacity(BASELINE_ROWS);
     let mut test = Vec::with_capacity(TEST_ROWS);
+    // The speed follows the duty point through the drive's ramp (10 s from one to the other).
+    let mut speed = if duty[0] == 0 { 1.0 } else { REDUCED_SPEED };
 
     for (s, &target) in targets.iter().enumerate() {
         // Row in the test stretch, if this second belongs to it.
@@ -216,24 +262,35 @@ pub fn generate(seed: u64) -> DemoData {
         let t = s as f64;
         let v = opening + 0.01 * (std::f64::consts::TAU * t / 97.0 + hunt_phase).sin();
 
-        // Operating point: pump curve (less head when running dry, more suction loss when the
-        // filter clogs) meets the system curve of the valve.
+        let speed_target = if duty[s] == 0 { 1.0 } else { REDUCED_SPEED };
+        speed += (speed_target - speed).clamp(-0.02, 0.02);
+        let n = speed;
+
+        // Operating point: pump curve (head ∝ n², less when running dry, more suction loss when
+        // the filter clogs) meets the system curve of the valve.
         let ps = 0.35 + suction.step(&mut rng);
-        let head = H0 * (1.0 - 0.75 * dry);
+        let head = n * n * H0 * (1.0 - 0.75 * dry);
         let r_sys = R_VALVE / (v * v);
         let drive = (ps + head - H_STATIC).max(0.0);
         let q = (drive / (K_PUMP + FILTER_LOSS * clog + r_sys)).sqrt();
         let pressure = H_STATIC + r_sys * q * q;
 
-        // Shaft power rises with flow; air in the pump lowers it. Current follows power and supply.
-        let shaft_w = (350.0 + 520.0 * q) * (1.0 - 0.55 * dry);
+        // Shaft power rises with flow (∝ n³ at similar points: n³·P(q/n)); air in the pump lowers
+        // it. Current follows power and supply.
+        let shaft_w = (350.0 * n * n * n + 520.0 * n * n * q) * (1.0 - 0.55 * dry);
         let volt = 1.0 + supply.step(&mut rng);
         let current = 1.1 * volt + shaft_w / (3f64.sqrt() * 400.0 * 0.82 * volt);
 
         // Bearing temperature: first-order lag towards air + load heating (+ friction when worn).
+        let warming = if row.is_some() {
+            WARMING_C * ramp(r, WARMING_START, TEST_ROWS - WARMING_START)
+        } else {
+            0.0
+        };
         let air_c = 23.0
             + 2.0 * (std::f64::consts::TAU * t / 10_800.0 + air_phase).sin()
-            + air.step(&mut rng);
+            + air.step(&mut rng)
+            + warming;
         let steady = air_c + 6.0 + 0.018 * shaft_w + 9.0 * wear;
         if bearing_temp.is_nan() {
             bearing_temp = steady;
@@ -242,9 +299,10 @@ pub fn generate(seed: u64) -> DemoData {
 
         // Vibration: flow, distance from the best-efficiency flow, a worn bearing, air.
         let dry_shake: f64 = rng.sample(StandardNormal);
+        // The best-efficiency flow scales with the speed.
         let vibration = 1.3
             + 0.9 * q
-            + 1.2 * (q - 1.1).powi(2)
+            + 1.2 * (q - 1.1 * n).powi(2)
             + 2.2 * wear
             + dry * (2.0 + 0.3 * dry_shake.abs());
 
@@ -277,13 +335,16 @@ pub fn generate(seed: u64) -> DemoData {
             baseline.push(reading);
         }
     }
+    let baseline_duty = duty[WARM_UP..test_at].to_vec();
+    let test_duty = duty[test_at..].to_vec();
 
     let episodes = vec![
         Episode {
             name: "clogging intake filter",
             description:
-                "The suction filter clogs within 90 s: pressure and flow sag together while the \
-                          motor current barely moves; every channel stays inside its normal range.",
+                "The suction filter clogs within 90 s at full speed: pressure and flow sag together \
+                          while the motor current barely moves; every channel stays inside its normal \
+                          range at that duty point.",
             start: CLOG.0,
             end: CLOG.1,
         },
@@ -327,6 +388,8 @@ pub fn generate(seed: u64) -> DemoData {
         baseline,
         test,
         labels,
+        baseline_duty,
+        test_duty,
         episodes,
     }
 }
@@ -337,15 +400,17 @@ fn iso_utc(unix: u64) -> String {
 }
 
 /// Write rows as CSV: a `timestamp` column (ISO-8601 UTC, the first row at `start_unix`, one row
-/// per `1 / RATE_HZ` seconds), the five [`COLUMNS`], and a `label` column (0 or 1) when labels
-/// are given. NaN is written as an empty cell. Values are written with [`DECIMALS`] places.
+/// per `1 / RATE_HZ` seconds), the five [`COLUMNS`], a [`DUTY_COLUMN`] (0 or 1) when duty points
+/// are given, and a `label` column (0 or 1) when labels are given. NaN is written as an empty
+/// cell. Values are written with [`DECIMALS`] places.
 ///
 /// # Errors
-/// When `labels` has a different length from `rows`, when `start_unix` is before 1970, or when
-/// writing fails.
+/// When `labels` or `duty` has a different length from `rows`, when `start_unix` is before 1970,
+/// or when writing fails.
 pub fn write_csv(
     w: &mut dyn Write,
     rows: &[[f64; 5]],
+    duty: Option<&[u8]>,
     labels: Option<&[bool]>,
     start_unix: i64,
 ) -> anyhow::Result<()> {
@@ -357,12 +422,24 @@ pub fn write_csv(
             rows.len()
         );
     }
+    if let Some(d) = duty {
+        anyhow::ensure!(
+            d.len() == rows.len(),
+            "{} duty points for {} rows",
+            d.len(),
+            rows.len()
+        );
+    }
     let start = u64::try_from(start_unix)
         .map_err(|_| anyhow::anyhow!("start time {start_unix} is before 1970-01-01"))?;
     let mut header = String::from("timestamp");
     for c in COLUMNS {
         header.push(',');
         header.push_str(c);
+    }
+    if duty.is_some() {
+        header.push(',');
+        header.push_str(DUTY_COLUMN);
     }
     if labels.is_some() {
         header.push_str(",label");
@@ -378,6 +455,9 @@ pub fn write_csv(
             if x.is_finite() {
                 line.push_str(&format!("{:.*}", DECIMALS[c], x));
             }
+        }
+        if let Some(d) = duty {
+            line.push_str(&format!(",{}", d[i]));
         }
         if let Some(l) = labels {
             line.push_str(if l[i] { ",1" } else { ",0" });
