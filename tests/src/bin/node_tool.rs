@@ -1667,9 +1667,13 @@ fn bank_figures(s: &mut String, cost: &str) -> Result<()> {
     writeln!(s, "**Model banks** (format version 2; `score-cost`, Cortex-M4F). Each bank has K modes of random")?;
     writeln!(s, "models of M scored values and the nearest-mode rule, so every score computes all K d²; the readings stay")?;
     writeln!(s, "close to mode 0, so the alarm stays quiet and drift (rate 0.01, bound 3) follows on every step. `Tracker::step`")?;
-    writeln!(s, "is the core's whole step (window, K scores, alarm machine, drift); the node's `node::track` adds a copy of the")?;
-    writeln!(s, "tracker while the alarm is quiet, so that a reading that raises it can be split per feature for `top`;")?;
-    writeln!(s, "`step_explained` splits every reading (in `f64`), which is what the copy avoids. The bound of the issue,")?;
+    writeln!(s, "is the core's whole step (window, K scores, alarm machine, drift); the node's `node::track` adds the test for")?;
+    writeln!(s, "a raise (a reading that raises is split per feature for `top` by `Tracker::top_last`, from the last scored")?;
+    writeln!(s, "vector the tracker keeps, with no copy of it); `step_explained` splits every reading (in `f64`), which is what")?;
+    writeln!(
+        s,
+        "splitting only on a raise avoids. The bound of the issue,"
+    )?;
     writeln!(s, "K·M(M+1)/2 multiply-adds, is in the `multiply-adds` column. RAM is `size_of::<Tracker<N, M>>()` on the")?;
     writeln!(s, "device (pinned in `core/src/track.rs`).\n")?;
     writeln!(s, "| N | M | K | window | differences | drift | `Tracker::step`, instructions | `node::track` | `step_explained` | multiply-adds | instructions per multiply-add | tracker RAM, bytes | blob, bytes |")?;
