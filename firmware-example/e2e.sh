@@ -76,9 +76,9 @@ replay "$BLOB_FX" "$READINGS" "$W/replay-fixed.csv"
 # readings, drift with a half-life of 600 readings and a bound of 0.5 baseline standard
 # deviations (tight, so that the run reaches it and the drift event and flag are checked).
 BLOB_BANK="$W/model-bank.blob"
-$ELLIPSOID fit "$W/demo/baseline.csv" --modes 2 --window 4 --drift-half-life 600 --drift-bound 0.5 \
+$ELLIPSOID fit "$W/demo/baseline.csv" --modes 2 --window 2 --drift-half-life 600 --drift-bound 0.5 \
   --out "$BLOB_BANK" --sequence 4 --trained-at 1772452800 >"$W/fit-bank.txt"
-grep -q "^Blob: version 2," "$W/fit-bank.txt" || fail "fit --modes 2 --window 4 --drift-half-life did not write a bank"
+grep -q "^Blob: version 2," "$W/fit-bank.txt" || fail "fit --modes 2 --window 2 --drift-half-life did not write a bank"
 replay "$BLOB_BANK" "$READINGS" "$W/replay-bank.csv"
 $TOOL table --input "$READINGS" --model "$BLOB_BANK" --out "$W/readings-bank.bin"
 cmp -s "$W/readings.bin" "$W/readings-bank.bin" || fail "the bank's reading table differs from the single model's"
@@ -174,11 +174,12 @@ $TOOL compare --device "$W/fixed-flipped.log" --replay "$W/replay-b.csv" --readi
 say "4b. a model bank in slot A: mode, d², alarm, fault and drift against the host"
 # shellcheck disable=SC2046
 run bank-a "$ELF" $(load "$BLOB_BANK" "$SLOT_A") $(load "$W/readings.bin" "$TABLE")
-grep -q "^model slot=A .* modes=2 select=nearest window=4 differences=0 drift=1$" "$W/bank-a.log" \
+grep -q "^model slot=A .* modes=2 select=nearest window=2 differences=0 drift=1$" "$W/bank-a.log" \
   || fail "the node did not take slot A as the bank"
 grep -q " event=drift " "$W/bank-a.log" || fail "the bank's run reached no drift bound"
+grep -q " event=raised" "$W/bank-a.log" || fail "the bank's run raised no alarm, so the alarm path was not compared"
 $TOOL compare --device "$W/bank-a.log" --replay "$W/replay-bank.csv" --readings "$READINGS" \
-  --slot A | sed 's/^/model bank (fit --modes 2 --window 4 --drift-half-life 600) in slot A, B empty: /' \
+  --slot A | sed 's/^/model bank (fit --modes 2 --window 2 --drift-half-life 600) in slot A, B empty: /' \
   | tee -a "$W/compared.txt"
 $TOOL compare --device "$W/bank-a.log" --replay "$W/track-bank.csv" --readings "$READINGS" --slot A \
   | sed 's/^/the same run against the core Tracker on the device table (node-tool track): /'
@@ -349,7 +350,7 @@ $TOOL compare --device "$W/m0-fixed-flipped.log" --replay "$W/replay-b.csv" --re
 run_m0 m0-bank-a "$ELF_M0" "$W/readings.bin" $(load "$BLOB_BANK" "$M0_A")
 must_pass_m0 m0-bank-a
 $TOOL compare --device "$W/m0-bank-a.log" --replay "$W/replay-bank.csv" --readings "$READINGS" \
-  --slot A | sed 's/^/M0, model bank (fit --modes 2 --window 4 --drift-half-life 600) in slot A, B empty: /' \
+  --slot A | sed 's/^/M0, model bank (fit --modes 2 --window 2 --drift-half-life 600) in slot A, B empty: /' \
   | tee -a "$W/compared-m0.txt"
 # --- end of the model bank on the node (M0) ---
 # The same blob programmed as a flash programmer would: `ellipsoid export` writes Intel HEX at the

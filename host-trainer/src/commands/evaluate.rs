@@ -170,7 +170,7 @@ pub fn run(a: &EvaluateArgs) -> Result<()> {
             a.model.input.display(),
             a.model.model.display()
         );
-        print!("{eval}");
+        println!("{eval}");
         if eval.unscored > 0 {
             println!(
                 "not scored, by cause: {} bad reading(s), {} with the reading window filling, {} \
