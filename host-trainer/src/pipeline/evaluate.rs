@@ -241,23 +241,9 @@ pub fn score_labelled(
 
 /// Replay a labelled stream through `rp` (for a blob, [`Replayer::from_blob`]: window, bank,
 /// alarm and drift as on the device). `spec.label_column` must be set.
-pub fn score_stream(mut rp: Replayer<'_>, path: &Path, spec: &StreamSpec) -> Result<Scored> {
-    anyhow::ensure!(
-        spec.label_column.is_some(),
-        "an evaluation needs a label column"
-    );
-    let (mut rows, mut labels) = (Vec::new(), Vec::new());
-    replay_stream(&mut rp, path, spec, |row, label| {
-        labels.push(label.unwrap_or(false));
-        rows.push(row);
-        Ok(())
-    })?;
-    anyhow::ensure!(
-        !rows.is_empty(),
-        "{}: no readings to evaluate",
-        path.display()
-    );
-    Ok(Scored { rows, labels })
+pub fn score_stream(rp: Replayer<'_>, path: &Path, spec: &StreamSpec) -> Result<Scored> {
+    // The shift is kept at the first reading only.
+    score_stream_tracked(rp, path, spec, usize::MAX).map(|(s, _)| s)
 }
 
 /// The drift shift after some readings: (reading index, shift per scored feature, model units).
