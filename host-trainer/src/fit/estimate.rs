@@ -186,15 +186,10 @@ pub(super) fn check_constant(
 pub(super) fn inverse_factor(file: &str, names: &[String], corr: &[f64]) -> Result<Vec<f64>> {
     let p = names.len();
     let r = DMatrix::from_row_slice(p, p, corr);
-    let chol = r.clone().cholesky();
-    let ok = chol.as_ref().is_some_and(|c| {
-        let l = c.l_dirty();
-        (0..p).all(|i| l[(i, i)] * l[(i, i)] >= COLLINEAR_PIVOT2)
-    });
-    if !ok {
+    let Some(chol) = full_rank_cholesky(&r) else {
         bail!("{file}: {}", explain_collinear(names, &r));
-    }
-    let l = chol.expect("checked").l();
+    };
+    let l = chol.l();
     let w = l
         .solve_lower_triangular(&DMatrix::identity(p, p))
         .context("inverting the Cholesky factor")?;
@@ -207,10 +202,32 @@ pub(super) fn inverse_factor(file: &str, names: &[String], corr: &[f64]) -> Resu
     Ok(out)
 }
 
-/// Find the first feature `k` whose share of variance unexplained by features `0..k` is below
-/// [`COLLINEAR_PIVOT2`], and say which earlier features explain it.
-fn explain_collinear(names: &[String], r: &DMatrix<f64>) -> String {
-    let p = names.len();
+/// The Cholesky factor of the correlation matrix `r`, when every pivot squared (the share of a
+/// feature's variance the features before it leave unexplained, 1 − R²) is at least
+/// [`COLLINEAR_PIVOT2`]: the rule by which a fit refuses collinear features.
+fn full_rank_cholesky(r: &DMatrix<f64>) -> Option<nalgebra::Cholesky<f64, nalgebra::Dyn>> {
+    let p = r.nrows();
+    r.clone().cholesky().filter(|c| {
+        let l = c.l_dirty();
+        (0..p).all(|i| l[(i, i)] * l[(i, i)] >= COLLINEAR_PIVOT2)
+    })
+}
+
+/// Whether the `p × p` correlation matrix `corr` fails [`full_rank_cholesky`]'s rule, and if
+/// so the first feature the features before it explain (`None` inside when no single one is
+/// found); `Ok(())` when it passes.
+pub(crate) fn check_collinear(corr: &[f64], p: usize) -> Result<(), Option<usize>> {
+    let r = DMatrix::from_row_slice(p, p, corr);
+    match full_rank_cholesky(&r) {
+        Some(_) => Ok(()),
+        None => Err(first_collinear(&r).map(|(k, _, _)| k)),
+    }
+}
+
+/// The first feature `k ≥ 1` whose share of variance unexplained by features `0..k` is below
+/// [`COLLINEAR_PIVOT2`]: `k`, its regression on those features and that share.
+fn first_collinear(r: &DMatrix<f64>) -> Option<(usize, DMatrix<f64>, f64)> {
+    let p = r.nrows();
     for k in 1..p {
         let a = r.view((0, 0), (k, k)).into_owned();
         let b = r.view((0, k), (k, 1)).into_owned();
@@ -219,19 +236,28 @@ fn explain_collinear(names: &[String], r: &DMatrix<f64>) -> String {
         let r2 = (b.transpose() * &beta)[(0, 0)];
         let unexplained = r[(k, k)] - r2;
         if unexplained < COLLINEAR_PIVOT2 {
-            let mut terms: Vec<(f64, &str)> = (0..k)
-                .filter(|&j| beta[(j, 0)].abs() > 1e-6)
-                .map(|j| (beta[(j, 0)].abs(), names[j].as_str()))
-                .collect();
-            terms.sort_by(|x, y| y.0.total_cmp(&x.0));
-            let with: Vec<String> = terms.iter().map(|(_, n)| format!("`{n}`")).collect();
-            return format!(
-                "feature `{}` is a linear combination of {} (R² = 1 − {:.1e}); the covariance is singular: drop one of these columns, or use shrinkage",
-                names[k],
-                if with.is_empty() { "the features before it".to_string() } else { with.join(", ") },
-                unexplained.max(0.0)
-            );
+            return Some((k, beta, unexplained));
         }
+    }
+    None
+}
+
+/// Find the first feature `k` whose share of variance unexplained by features `0..k` is below
+/// [`COLLINEAR_PIVOT2`], and say which earlier features explain it.
+fn explain_collinear(names: &[String], r: &DMatrix<f64>) -> String {
+    if let Some((k, beta, unexplained)) = first_collinear(r) {
+        let mut terms: Vec<(f64, &str)> = (0..k)
+            .filter(|&j| beta[(j, 0)].abs() > 1e-6)
+            .map(|j| (beta[(j, 0)].abs(), names[j].as_str()))
+            .collect();
+        terms.sort_by(|x, y| y.0.total_cmp(&x.0));
+        let with: Vec<String> = terms.iter().map(|(_, n)| format!("`{n}`")).collect();
+        return format!(
+            "feature `{}` is a linear combination of {} (R² = 1 − {:.1e}); the covariance is singular: drop one of these columns, or use shrinkage",
+            names[k],
+            if with.is_empty() { "the features before it".to_string() } else { with.join(", ") },
+            unexplained.max(0.0)
+        );
     }
     "the correlation matrix is not positive definite (features are linearly dependent); use shrinkage".to_string()
 }

@@ -41,6 +41,7 @@ use crate::stats::moments::correlation_of;
 
 mod check;
 mod estimate;
+pub(crate) use estimate::check_collinear;
 pub mod memory;
 pub mod mixture;
 mod outliers;

@@ -35,9 +35,10 @@ use ellipsoid_core::ReadingFault;
 
 use crate::data::ingest::{self, CsvOptions, Layout, Reader};
 use crate::device::replay::to_device;
+use crate::fit::check_collinear;
 use crate::fit::memory::{fit_rows, Table};
 use crate::fit::mixture::{choose_modes_checked, fit_mixture, Mixture, MixtureOptions, SkippedK};
-use crate::fit::{Shrinkage, COLLINEAR_PIVOT2, CONSTANT_REL_SD};
+use crate::fit::{Shrinkage, CONSTANT_REL_SD};
 use crate::pipeline::train::{train_with, TrainSpec, Trained};
 use crate::stats::threshold::Method;
 
@@ -587,31 +588,26 @@ impl PartitionCheck<'_> {
                 }
             }
             if self.shrinkage == Shrinkage::None {
-                // Cholesky of the correlation matrix: the j-th pivot squared is the share of
-                // feature j's variance the features before it leave unexplained, 1 − R².
-                let corr =
-                    |a: usize, b: usize| cov[a * m + b] / (cov[a * m + a] * cov[b * m + b]).sqrt();
-                let mut l = vec![0.0f64; m * m];
-                let mut bad = None;
-                for j in 0..m {
-                    let pivot2 = corr(j, j) - (0..j).map(|q| l[j * m + q].powi(2)).sum::<f64>();
-                    if pivot2.is_nan() || pivot2 < COLLINEAR_PIVOT2 {
-                        bad = Some(j);
-                        break;
-                    }
-                    l[j * m + j] = pivot2.sqrt();
-                    for i in j + 1..m {
-                        let v =
-                            corr(i, j) - (0..j).map(|q| l[i * m + q] * l[j * m + q]).sum::<f64>();
-                        l[i * m + j] = v / l[j * m + j];
-                    }
-                }
-                if let Some(j) = bad {
-                    return Some(format!(
+                // The fit's own collinearity rule, on the mode's correlation matrix.
+                let corr: Vec<f64> = (0..m * m)
+                    .map(|ab| {
+                        let (a, b) = (ab / m, ab % m);
+                        cov[a * m + b] / (cov[a * m + a] * cov[b * m + b]).sqrt()
+                    })
+                    .collect();
+                match check_collinear(&corr, m) {
+                    Ok(()) => {}
+                    Err(Some(j)) => return Some(format!(
                         "mode {md}: `{}` is a linear combination of the scored values before it \
-                         within the mode (its covariance would be singular)",
+                             within the mode (its covariance would be singular)",
                         self.names[j]
-                    ));
+                    )),
+                    Err(None) => {
+                        return Some(format!(
+                            "mode {md}: the scored values are linearly dependent within the mode \
+                             (its covariance would be singular)"
+                        ))
+                    }
                 }
             }
         }
