@@ -198,7 +198,8 @@ impl<'a, const N: usize, const M: usize> Tracker<'a, N, M> {
         if let Ok((s, _, t)) = &scored {
             let k = usize::from(s.mode);
             if explain {
-                contributions = self.bank.contributions(k, t).ok();
+                // `last_t` and `last_k` were set from this reading above.
+                contributions = self.explain_last();
             }
             let quiet = before == Status::Quiet && self.alarm.status() == Status::Quiet;
             if drift && s.verdict == Verdict::Below && quiet && !step.fault {

@@ -597,11 +597,13 @@ impl PartitionCheck<'_> {
                     .collect();
                 match check_collinear(&corr, m) {
                     Ok(()) => {}
-                    Err(Some(j)) => return Some(format!(
+                    Err(Some(j)) => {
+                        return Some(format!(
                         "mode {md}: `{}` is a linear combination of the scored values before it \
                              within the mode (its covariance would be singular)",
                         self.names[j]
-                    )),
+                    ))
+                    }
                     Err(None) => {
                         return Some(format!(
                             "mode {md}: the scored values are linearly dependent within the mode \
